@@ -1,0 +1,49 @@
+package windows
+
+// Interval is a two-sided confidence interval [Lo, Hi].
+type Interval struct {
+	Lo float64
+	Hi float64
+}
+
+// ClassMetrics are the one-vs-rest figures of one class. A nil pointer is an
+// undefined ratio (zero denominator): absent from /metrics, null in JSON.
+type ClassMetrics struct {
+	Class string
+	// Support is the number of labeled examples whose actual class this is.
+	Support        int64
+	TP, FP, FN, TN int64
+	// PredictedCount counts all predictions of this class, labeled or not.
+	PredictedCount int64
+
+	Recall         *float64
+	Precision      *float64
+	Specificity    *float64
+	F1             *float64
+	Prevalence     *float64
+	PredictedShare *float64
+
+	RecallInterval      *Interval
+	PrecisionInterval   *Interval
+	SpecificityInterval *Interval
+}
+
+// Metrics are the figures of one matrix. Nil pointers are undefined ratios.
+type Metrics struct {
+	// Predictions counts all predictions in scope, labeled or not; Labeled
+	// those with a label (the matrix total).
+	Predictions int64
+	Labeled     int64
+
+	Accuracy         *float64
+	BalancedAccuracy *float64
+	MacroF1          *float64
+	LabelCoverage    *float64
+	// MCC is the multi-class Matthews correlation (Gorodkin 2004's R_K).
+	MCC *float64
+	// Kappa is Cohen's kappa.
+	Kappa *float64
+
+	// PerClass is in the matrix's class order.
+	PerClass []ClassMetrics
+}
