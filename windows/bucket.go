@@ -2,13 +2,16 @@ package windows
 
 import (
 	"fmt"
+	"math"
+	"math/bits"
 	"strconv"
 	"strings"
 	"time"
 )
 
 // BucketStart returns floor(t / bucket) * bucket in UTC, counting from the
-// Unix epoch. Times before the epoch floor towards the past.
+// Unix epoch. Times before the epoch floor towards the past. bucket must be
+// positive and t within the years 1678–2262 that UnixNano represents.
 func BucketStart(t time.Time, bucket time.Duration) time.Time {
 	ns := t.UnixNano()
 	b := int64(bucket)
@@ -65,43 +68,93 @@ func (win Window) Validate(bucket time.Duration) error {
 	return nil
 }
 
-// ParseDuration parses Go duration syntax extended with a "d" unit of 24
-// hours, which may start the string and combine with the others ("7d",
-// "1d12h", "90m").
+// ParseDuration parses Go duration syntax extended with a leading day count
+// of 24-hour days: "7d", "1.5d", "1d12h", "-2d", "90m". The day count is a
+// plain decimal number; Go syntax may follow it, without a sign of its own.
+// Strings without "d" are parsed by time.ParseDuration alone.
 func ParseDuration(s string) (time.Duration, error) {
 	t := strings.TrimSpace(s)
+	days, rest, hasDays := strings.Cut(t, "d")
+	if !hasDays {
+		d, err := time.ParseDuration(t)
+		if err != nil {
+			return 0, fmt.Errorf("invalid duration %q", s)
+		}
+		return d, nil
+	}
 	neg := false
-	if rest, ok := strings.CutPrefix(t, "-"); ok {
-		neg, t = true, rest
+	switch {
+	case strings.HasPrefix(days, "-"):
+		neg, days = true, days[1:]
+	case strings.HasPrefix(days, "+"):
+		days = days[1:]
 	}
-	var days time.Duration
-	if i := strings.IndexByte(t, 'd'); i >= 0 {
-		n, err := strconv.ParseFloat(t[:i], 64)
-		if err != nil || n < 0 {
-			return 0, fmt.Errorf("invalid duration %q", s)
-		}
-		days = time.Duration(n * float64(24*time.Hour))
-		t = t[i+1:]
-	}
-	var rest time.Duration
-	if t != "" {
-		var err error
-		rest, err = time.ParseDuration(t)
-		if err != nil || rest < 0 {
-			return 0, fmt.Errorf("invalid duration %q", s)
-		}
-	} else if days == 0 && !strings.Contains(s, "d") {
+	d, ok := parseDays(days)
+	if !ok {
 		return 0, fmt.Errorf("invalid duration %q", s)
 	}
-	d := days + rest
+	if rest != "" {
+		r, err := time.ParseDuration(rest)
+		if err != nil || rest[0] == '-' || rest[0] == '+' || r > math.MaxInt64-d {
+			return 0, fmt.Errorf("invalid duration %q", s)
+		}
+		d += r
+	}
 	if neg {
 		d = -d
 	}
 	return d, nil
 }
 
-// FormatDuration prints d in the shortest form ParseDuration reads back,
-// using whole days where it can ("7d", "1d12h0m0s", "5m0s").
+// parseDays converts a decimal day count ("7", "1.5", ".25", "3.") to a
+// duration, truncated to the nanosecond as time.ParseDuration truncates. It
+// reports false on any other syntax and on overflow.
+func parseDays(s string) (time.Duration, bool) {
+	const day = uint64(24 * time.Hour)
+	whole, frac, _ := strings.Cut(s, ".")
+	if (whole == "" && frac == "") || !isDecimalDigits(whole) || !isDecimalDigits(frac) {
+		return 0, false
+	}
+	var ns uint64
+	if whole != "" {
+		w, err := strconv.ParseUint(whole, 10, 64)
+		if err != nil || w > math.MaxInt64/day {
+			return 0, false
+		}
+		ns = w * day
+	}
+	// Digits past the 18th (worth under 1e-4 ns) are ignored, so 10^k fits
+	// a uint64; frac·day/10^k is then exact in 128 bits.
+	frac = frac[:min(len(frac), 18)]
+	if frac != "" {
+		f, _ := strconv.ParseUint(frac, 10, 64)
+		scale := uint64(1)
+		for range frac {
+			scale *= 10
+		}
+		hi, lo := bits.Mul64(f, day)
+		q, _ := bits.Div64(hi, lo, scale)
+		ns += q
+	}
+	if ns > math.MaxInt64 {
+		return 0, false
+	}
+	return time.Duration(ns), true
+}
+
+// isDecimalDigits reports whether s holds only the digits 0–9.
+func isDecimalDigits(s string) bool {
+	for i := 0; i < len(s); i++ {
+		if s[i] < '0' || s[i] > '9' {
+			return false
+		}
+	}
+	return true
+}
+
+// FormatDuration prints d in a form ParseDuration reads back: whole days
+// when d is a positive multiple of 24 hours ("7d"), else Go's form
+// ("36h0m0s", "5m0s").
 func FormatDuration(d time.Duration) string {
 	if d > 0 && d%(24*time.Hour) == 0 {
 		return strconv.FormatInt(int64(d/(24*time.Hour)), 10) + "d"

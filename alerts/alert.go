@@ -1,0 +1,259 @@
+package alerts
+
+import (
+	"encoding/json"
+	"fmt"
+	"maps"
+	"net/url"
+	"strings"
+	"time"
+)
+
+// State is an alert instance's place in its life cycle (see the package
+// documentation).
+type State string
+
+// The alert states.
+const (
+	StateInactive State = "inactive"
+	StatePending  State = "pending"
+	StateFiring   State = "firing"
+	StateResolved State = "resolved"
+)
+
+// Outcome is what one evaluation found for one alert instance.
+type Outcome string
+
+// Evaluation outcomes.
+const (
+	// OutcomeMet: the rule's condition holds.
+	OutcomeMet Outcome = "met"
+	// OutcomeClear: the condition does not hold.
+	OutcomeClear Outcome = "clear"
+	// OutcomeUnknown: too little data to judge (fewer than the rule's
+	// minimum count, an empty window); the instance keeps its state.
+	OutcomeUnknown Outcome = "unknown"
+)
+
+// Result holds the figures one evaluation produced for one instance. Absent
+// figures are null in JSON.
+type Result struct {
+	Outcome Outcome `json:"outcome"`
+	// Reason explains an unknown outcome.
+	Reason string `json:"reason,omitempty"`
+	// From and To bound the buckets of the current period.
+	From time.Time `json:"from,omitzero"`
+	To   time.Time `json:"to,omitzero"`
+	// Value is the current figure: the metric, the proportion compared,
+	// the PSI of a shift rule, or the seconds without a prediction.
+	Value *float64 `json:"value"`
+	// Count is the figure's denominator (labeled examples of the class for
+	// recall, all predictions for label coverage, the period's total for a
+	// shift rule).
+	Count int64 `json:"count"`
+	// Interval bounds Value at the rule's confidence.
+	Interval *[2]float64 `json:"interval,omitempty"`
+	// Threshold is the floor, ceiling, PSI threshold or silence limit
+	// (seconds).
+	Threshold *float64 `json:"threshold,omitempty"`
+	// Confidence is the level intervals and tests used.
+	Confidence float64 `json:"confidence,omitempty"`
+	// PValue is the test's p-value; for drop and confusion_rise the
+	// one-sided p-value, judged with Benjamini–Hochberg across the rule's
+	// instances of the model.
+	PValue *float64 `json:"p_value,omitempty"`
+	// Statistic and DF are the shift test's statistic and degrees of
+	// freedom.
+	Statistic *float64 `json:"statistic,omitempty"`
+	DF        *int     `json:"df,omitempty"`
+	// PSI is the shift rule's population stability index.
+	PSI *float64 `json:"psi,omitempty"`
+	// Difference is current minus reference, with Newcombe's interval.
+	Difference         *float64    `json:"difference,omitempty"`
+	DifferenceInterval *[2]float64 `json:"difference_interval,omitempty"`
+	Margin             *float64    `json:"margin,omitempty"`
+	Reference          *Figures    `json:"reference,omitempty"`
+	// LastPrediction is the latest prediction time of a silence rule.
+	LastPrediction *time.Time `json:"last_prediction,omitempty"`
+}
+
+// Figures are a reference period's bounds and figure.
+type Figures struct {
+	From  time.Time `json:"from"`
+	To    time.Time `json:"to"`
+	Value *float64  `json:"value"`
+	Count int64     `json:"count"`
+}
+
+// Alert is one alert instance as shown by the API and handed to notifiers:
+// one rule applied to one model (and class, or pair of classes).
+type Alert struct {
+	Key       string `json:"key"`
+	Rule      string `json:"rule"`
+	Kind      Kind   `json:"kind"`
+	Model     string `json:"model"`
+	Class     string `json:"class,omitempty"`
+	Predicted string `json:"predicted,omitempty"`
+	Window    string `json:"window,omitempty"`
+	// Metric is what floor, ceiling and drop rules read.
+	Metric   string `json:"metric,omitempty"`
+	Severity string `json:"severity"`
+	State    State  `json:"state"`
+	// Labels identify the alert to Alertmanager: alertname (the rule),
+	// model, class, predicted (confusion_rise), severity, and the rule's
+	// own labels.
+	Labels      map[string]string `json:"labels"`
+	Annotations map[string]string `json:"annotations,omitempty"`
+	// ActiveAt is the first evaluation of the current episode with the
+	// condition met; StartsAt when the alert fired; EndsAt when it resolved.
+	ActiveAt     time.Time `json:"active_at,omitzero"`
+	StartsAt     time.Time `json:"starts_at,omitzero"`
+	EndsAt       time.Time `json:"ends_at,omitzero"`
+	EvaluatedAt  time.Time `json:"evaluated_at,omitzero"`
+	Result       Result    `json:"result"`
+	GeneratorURL string    `json:"generator_url,omitempty"`
+}
+
+// instanceKey identifies an instance; a JSON array keeps it unambiguous
+// whatever the names contain.
+func instanceKey(rule, model, class, predicted string) string {
+	b, _ := json.Marshal([]string{rule, model, class, predicted})
+	return string(b)
+}
+
+// labels returns the alert's label set.
+func (r *rule) labels(model, class, predicted string) map[string]string {
+	l := maps.Clone(r.Labels)
+	if l == nil {
+		l = make(map[string]string, 5)
+	}
+	l["alertname"] = r.Name
+	l["model"] = model
+	l["severity"] = r.Severity
+	if class != "" {
+		l["class"] = class
+	}
+	if predicted != "" {
+		l["predicted"] = predicted
+	}
+	return l
+}
+
+// TemplateData is what annotation templates see, e.g.
+// "recall of {{.Class}} is {{printf \"%.2f\" .Value}}". Undefined figures
+// are 0.
+type TemplateData struct {
+	Rule, Kind, Model, Class, Predicted, Window, Severity string
+	State                                                 string
+	Value, Lo, Hi, Threshold, PValue, Reference           float64
+	Count                                                 int64
+	// Summary is classwatch's own one-line description of the figures.
+	Summary string
+}
+
+// annotate renders the rule's annotations for a; a template that fails is
+// reported in its own text rather than dropped. A "summary" annotation is
+// added when the rule has none.
+func (r *rule) annotate(a *Alert) {
+	res := a.Result
+	d := TemplateData{
+		Rule: a.Rule, Kind: string(a.Kind), Model: a.Model, Class: a.Class, Predicted: a.Predicted,
+		Window: a.Window, Severity: a.Severity, State: string(a.State), Count: res.Count,
+		Value: deref(res.Value), Threshold: deref(res.Threshold), PValue: deref(res.PValue),
+		Summary: summary(a),
+	}
+	if res.Interval != nil {
+		d.Lo, d.Hi = res.Interval[0], res.Interval[1]
+	}
+	if res.Reference != nil {
+		d.Reference = deref(res.Reference.Value)
+	}
+	out := make(map[string]string, len(r.annotations)+1)
+	for k, t := range r.annotations {
+		var sb strings.Builder
+		if err := t.Execute(&sb, d); err != nil {
+			out[k] = fmt.Sprintf("%s (template error: %v)", r.Annotations[k], err)
+			continue
+		}
+		out[k] = sb.String()
+	}
+	if _, ok := out["summary"]; !ok {
+		out["summary"] = d.Summary
+	}
+	a.Annotations = out
+}
+
+// generatorURL links an alert to the model's windows on the daemon.
+func generatorURL(base, model string) string {
+	if base == "" {
+		return ""
+	}
+	return strings.TrimSuffix(base, "/") + "/v1/models/" + url.PathEscape(model) + "/windows"
+}
+
+// summary describes an alert's latest figures in one neutral line, true
+// whether the condition holds or not.
+func summary(a *Alert) string {
+	res := a.Result
+	subject := a.Model // "card-fraud", or "fraud on card-fraud"
+	if a.Class != "" && a.Predicted == "" {
+		subject = a.Class + " on " + a.Model
+	}
+	if res.Reason != "" {
+		return fmt.Sprintf("%s %s: %s", a.Rule, subject, res.Reason)
+	}
+	var ref Figures
+	if res.Reference != nil {
+		ref = *res.Reference
+	}
+	switch a.Kind {
+	case KindFloor, KindCeiling:
+		s := fmt.Sprintf("%s of %s over %s: %s", a.Metric, subject, a.Window, num(res.Value))
+		if res.Interval != nil {
+			s += fmt.Sprintf(" (%g%% interval %.4g–%.4g, n=%d)", 100*res.Confidence, res.Interval[0], res.Interval[1], res.Count)
+		} else {
+			s += fmt.Sprintf(" (n=%d)", res.Count)
+		}
+		return s + fmt.Sprintf("; %s %s", a.Kind, num(res.Threshold))
+	case KindDrop:
+		return fmt.Sprintf("%s of %s over %s: %s (n=%d) against %s (n=%d) in the reference; one-sided p=%.3g, margin %s",
+			a.Metric, subject, a.Window, num(res.Value), res.Count, num(ref.Value), ref.Count, deref(res.PValue), num(res.Margin))
+	case KindConfusionRise:
+		return fmt.Sprintf("share of %s predicted as %s on %s over %s: %s (n=%d) against %s (n=%d) in the reference; one-sided p=%.3g, margin %s",
+			a.Class, a.Predicted, a.Model, a.Window, num(res.Value), res.Count, num(ref.Value), ref.Count, deref(res.PValue), num(res.Margin))
+	case KindPrevalenceShift, KindOutputShift:
+		what := "actual-class mix"
+		if a.Kind == KindOutputShift {
+			what = "predicted-class mix"
+		}
+		s := fmt.Sprintf("%s of %s over %s against the reference (n=%d vs %d):", what, a.Model, a.Window, res.Count, ref.Count)
+		if res.PValue != nil {
+			s += fmt.Sprintf(" p=%.3g", *res.PValue)
+		}
+		return s + fmt.Sprintf(" PSI=%s", num(res.PSI))
+	case KindSilence:
+		limit := time.Duration(deref(res.Threshold) * float64(time.Second))
+		quiet := time.Duration(deref(res.Value) * float64(time.Second))
+		if res.LastPrediction == nil {
+			return fmt.Sprintf("no prediction from %s for %s (none yet); limit %s", a.Model, quiet, limit)
+		}
+		return fmt.Sprintf("last prediction from %s at %s (%s ago); limit %s", a.Model, res.LastPrediction.Format(time.RFC3339), quiet, limit)
+	}
+	return subject
+}
+
+func num(p *float64) string {
+	if p == nil {
+		return "undefined"
+	}
+	return fmt.Sprintf("%.4g", *p)
+}
+
+func deref(p *float64) float64 {
+	if p == nil {
+		return 0
+	}
+	return *p
+}
+
+func ptr[T any](v T) *T { return &v }

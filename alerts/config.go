@@ -1,0 +1,373 @@
+package alerts
+
+import (
+	"errors"
+	"fmt"
+	"os"
+	"slices"
+	"strings"
+	"time"
+
+	"gopkg.in/yaml.v3"
+
+	"github.com/classwatch/classwatch/windows"
+)
+
+// ruleKeys are the keys every rule may have; kindKeys those only some
+// kinds take. A key that exists but does not apply to the rule's kind is
+// an error, since it would silently do nothing.
+var (
+	ruleKeys = []string{"name", "kind", "model", "window", "schedule", "severity", "labels",
+		"annotations", "fire_after", "resolve_after", "confidence", "min_count"}
+	kindKeys = map[Kind][]string{
+		KindFloor:           {"metric", "classes", "threshold", "interval"},
+		KindCeiling:         {"metric", "classes", "threshold", "interval"},
+		KindDrop:            {"metric", "classes", "margin", "reference"},
+		KindPrevalenceShift: {"reference", "test", "psi_threshold"},
+		KindOutputShift:     {"reference", "test", "psi_threshold"},
+		KindConfusionRise:   {"pairs", "margin", "reference"},
+		KindSilence:         {"silent_for"},
+	}
+	referenceKeys = []string{"window", "from", "to"}
+	pairKeys      = []string{"actual", "predicted"}
+)
+
+// ruleYAML is a rule as written; optional numbers are pointers so that an
+// explicit 0 is told apart from an absent key.
+type ruleYAML struct {
+	Name         string            `yaml:"name"`
+	Kind         string            `yaml:"kind"`
+	Model        string            `yaml:"model"`
+	Window       string            `yaml:"window"`
+	Schedule     string            `yaml:"schedule"`
+	Severity     string            `yaml:"severity"`
+	Labels       map[string]string `yaml:"labels"`
+	Annotations  map[string]string `yaml:"annotations"`
+	FireAfter    *int              `yaml:"fire_after"`
+	ResolveAfter *int              `yaml:"resolve_after"`
+	Confidence   *float64          `yaml:"confidence"`
+	MinCount     *int64            `yaml:"min_count"`
+	Metric       string            `yaml:"metric"`
+	Classes      []string          `yaml:"classes"`
+	Threshold    *float64          `yaml:"threshold"`
+	Interval     string            `yaml:"interval"`
+	Margin       float64           `yaml:"margin"`
+	Reference    *struct {
+		Window string `yaml:"window"`
+		From   string `yaml:"from"`
+		To     string `yaml:"to"`
+	} `yaml:"reference"`
+	Test         string   `yaml:"test"`
+	PSIThreshold *float64 `yaml:"psi_threshold"`
+	Pairs        []Pair   `yaml:"pairs"`
+	SilentFor    string   `yaml:"silent_for"`
+}
+
+// ParseRules reads the alerts section of the daemon's config, a sequence of
+// rules, and checks every rule as New would. Unknown keys, keys that do not
+// apply to a rule's kind and bad values are errors naming the key and its
+// line; all problems found are returned together. A nil, zero or null node
+// means no rules.
+func ParseRules(node *yaml.Node) ([]Rule, error) {
+	items, err := sequence(node, "alerts")
+	if err != nil || len(items) == 0 {
+		return nil, err
+	}
+	var (
+		rules []Rule
+		errs  []error
+		names = make(map[string]bool, len(items))
+	)
+	for i, n := range items {
+		r, rerrs := parseRule(n, i)
+		errs = append(errs, rerrs...)
+		if r.Name != "" && names[r.Name] {
+			errs = append(errs, fmt.Errorf("line %d: rule %s: name: repeated", valueLine(n, "name"), ruleLabel(r.Name, i)))
+		}
+		names[r.Name] = true
+		rules = append(rules, r)
+	}
+	if err := errors.Join(errs...); err != nil {
+		return nil, err
+	}
+	return rules, nil
+}
+
+// parseRule decodes and checks one rule node; it returns the rule with its
+// defaults filled in.
+func parseRule(n *yaml.Node, i int) (Rule, []error) {
+	var errs []error
+	label := ruleLabel(stringValue(n, "name"), i)
+	fail := func(line int, format string, args ...any) {
+		errs = append(errs, fmt.Errorf("line %d: rule %s: %s", line, label, fmt.Sprintf(format, args...)))
+	}
+	if n.Kind != yaml.MappingNode {
+		fail(n.Line, "expected a mapping of rule settings")
+		return Rule{}, errs
+	}
+	kind := Kind(stringValue(n, "kind"))
+	allowed := ruleKeys
+	if extra, ok := kindKeys[kind]; ok {
+		allowed = append(slices.Clone(ruleKeys), extra...)
+	}
+	for _, k := range keys(n) {
+		if slices.Contains(allowed, k.Value) {
+			continue
+		}
+		switch {
+		case !isKindKey(k.Value):
+			fail(k.Line, "unknown key %q", k.Value)
+		case kind.valid():
+			fail(k.Line, "%s: does not apply to kind %s", k.Value, kind)
+		}
+	}
+	if v := child(n, "reference"); v != nil {
+		errs = append(errs, checkKeys(v, "rule "+label+": reference", referenceKeys)...)
+	}
+	if v := child(n, "pairs"); v != nil && v.Kind == yaml.SequenceNode {
+		for _, p := range v.Content {
+			errs = append(errs, checkKeys(p, "rule "+label+": pairs", pairKeys)...)
+		}
+	}
+	if len(errs) > 0 {
+		return Rule{}, errs
+	}
+
+	var y ruleYAML
+	if err := n.Decode(&y); err != nil {
+		return Rule{}, decodeErrors(err, "rule "+label)
+	}
+	r := Rule{
+		Name: y.Name, Kind: Kind(y.Kind), Model: y.Model, Window: y.Window,
+		Schedule: y.Schedule, Severity: y.Severity, Labels: y.Labels, Annotations: y.Annotations,
+		Metric: y.Metric, Classes: y.Classes, Interval: y.Interval, Margin: y.Margin,
+		Test: y.Test, Pairs: y.Pairs,
+	}
+	// Settings whose zero means "default" in Go refuse an explicit zero, so
+	// that "fire_after: 0" is not quietly read as 1.
+	positive := func(key string, p *int64) int64 {
+		if p == nil {
+			return 0
+		}
+		if *p <= 0 {
+			fail(valueLine(n, key), "%s: must be at least 1", key)
+			return 0
+		}
+		return *p
+	}
+	asInt64 := func(p *int) *int64 {
+		if p == nil {
+			return nil
+		}
+		v := int64(*p)
+		return &v
+	}
+	r.FireAfter = int(positive("fire_after", asInt64(y.FireAfter)))
+	r.ResolveAfter = int(positive("resolve_after", asInt64(y.ResolveAfter)))
+	r.MinCount = positive("min_count", y.MinCount)
+	if c := y.Confidence; c != nil {
+		if !(*c > 0 && *c < 1) {
+			fail(valueLine(n, "confidence"), "confidence: %g must lie strictly between 0 and 1", *c)
+		} else {
+			r.Confidence = *c
+		}
+	}
+	if (kind == KindFloor || kind == KindCeiling) && y.Threshold == nil {
+		fail(n.Line, "threshold: required")
+	} else if y.Threshold != nil {
+		r.Threshold = *y.Threshold
+	}
+	if y.PSIThreshold != nil {
+		if *y.PSIThreshold > 0 {
+			r.PSIThreshold = *y.PSIThreshold
+		} else {
+			fail(valueLine(n, "psi_threshold"), "psi_threshold: must be positive")
+		}
+	}
+	if y.SilentFor != "" {
+		d, err := windows.ParseDuration(y.SilentFor)
+		if err != nil {
+			fail(valueLine(n, "silent_for"), "silent_for: %v", err)
+		}
+		r.SilentFor = d
+	}
+	if ref := y.Reference; ref != nil {
+		r.Reference.Window = ref.Window
+		refNode := child(n, "reference")
+		for _, f := range []struct {
+			key string
+			s   string
+			t   *time.Time
+		}{{"from", ref.From, &r.Reference.From}, {"to", ref.To, &r.Reference.To}} {
+			if f.s == "" {
+				continue
+			}
+			t, err := time.Parse(time.RFC3339, f.s)
+			if err != nil {
+				fail(valueLine(refNode, f.key), "reference: %s: %q is not an RFC 3339 time", f.key, f.s)
+			}
+			*f.t = t.UTC()
+		}
+	}
+	r = r.withDefaults()
+	_, ferrs := compile(r)
+	for _, fe := range ferrs {
+		fail(valueLine(n, fe.key), "%v", fe)
+	}
+	return r, errs
+}
+
+func isKindKey(k string) bool {
+	for _, ks := range kindKeys {
+		if slices.Contains(ks, k) {
+			return true
+		}
+	}
+	return false
+}
+
+// CheckFile validates the alerts and notifiers sections of the config file
+// at path without starting anything: the parse New would see, plus, when
+// the file lists windows, that every rule names one of them. Other
+// top-level keys are not checked here.
+func CheckFile(path string) error {
+	data, err := os.ReadFile(path)
+	if err != nil {
+		return fmt.Errorf("read config: %w", err)
+	}
+	var doc yaml.Node
+	if err := yaml.Unmarshal(data, &doc); err != nil {
+		return fmt.Errorf("parse %s: %w", path, err)
+	}
+	if len(doc.Content) == 0 {
+		return nil // an empty file has no rules
+	}
+	top := doc.Content[0]
+	if top.Kind != yaml.MappingNode {
+		return fmt.Errorf("%s: line %d: expected a mapping at the top level", path, top.Line)
+	}
+	rules, rerr := ParseRules(child(top, "alerts"))
+	_, nerr := ParseNotifiers(child(top, "notifiers"))
+	errs := []error{rerr, nerr}
+	if ws := child(top, "windows"); ws != nil && rerr == nil {
+		errs = append(errs, checkWindowNames(rules, windowNames(ws)))
+	}
+	if err := errors.Join(errs...); err != nil {
+		return fmt.Errorf("%s: %w", path, err)
+	}
+	return nil
+}
+
+// windowNames reads the name of each entry of a windows sequence.
+func windowNames(n *yaml.Node) []string {
+	var names []string
+	if n.Kind != yaml.SequenceNode {
+		return nil
+	}
+	for _, w := range n.Content {
+		if name := stringValue(w, "name"); name != "" {
+			names = append(names, name)
+		}
+	}
+	return names
+}
+
+// checkWindowNames reports rules that name a window not in names.
+func checkWindowNames(rules []Rule, names []string) error {
+	var errs []error
+	for i, r := range rules {
+		for _, w := range []string{r.Window, r.Reference.Window} {
+			if w != "" && !slices.Contains(names, w) {
+				errs = append(errs, fmt.Errorf("rule %s: window %q is not configured (windows: %v)", ruleLabel(r.Name, i), w, names))
+			}
+		}
+	}
+	return errors.Join(errs...)
+}
+
+// sequence returns the items of a sequence node. nil, a zero Node (an
+// absent key decoded into a yaml.Node field) and null are empty.
+func sequence(n *yaml.Node, section string) ([]*yaml.Node, error) {
+	if n == nil || n.Kind == 0 || n.Tag == "!!null" {
+		return nil, nil
+	}
+	if n.Kind != yaml.SequenceNode {
+		return nil, fmt.Errorf("line %d: %s: expected a list", n.Line, section)
+	}
+	return n.Content, nil
+}
+
+// keys returns the key nodes of a mapping.
+func keys(n *yaml.Node) []*yaml.Node {
+	var ks []*yaml.Node
+	for i := 0; i+1 < len(n.Content); i += 2 {
+		ks = append(ks, n.Content[i])
+	}
+	return ks
+}
+
+// child returns the value node of key in mapping n, or nil.
+func child(n *yaml.Node, key string) *yaml.Node {
+	if n == nil || n.Kind != yaml.MappingNode {
+		return nil
+	}
+	for i := 0; i+1 < len(n.Content); i += 2 {
+		if n.Content[i].Value == key {
+			return n.Content[i+1]
+		}
+	}
+	return nil
+}
+
+// stringValue returns the scalar value of key in mapping n, or "".
+func stringValue(n *yaml.Node, key string) string {
+	if v := child(n, key); v != nil && v.Kind == yaml.ScalarNode {
+		return v.Value
+	}
+	return ""
+}
+
+// valueLine returns the line of key's value in mapping n, or n's own line
+// when the key is absent.
+func valueLine(n *yaml.Node, key string) int {
+	if v := child(n, key); v != nil {
+		return v.Line
+	}
+	if n == nil {
+		return 0
+	}
+	return n.Line
+}
+
+// checkKeys reports keys of mapping n that are not in allowed; what names
+// the mapping in messages.
+func checkKeys(n *yaml.Node, what string, allowed []string) []error {
+	if n.Kind != yaml.MappingNode {
+		return []error{fmt.Errorf("line %d: %s: expected a mapping", n.Line, what)}
+	}
+	var errs []error
+	for _, k := range keys(n) {
+		if !slices.Contains(allowed, k.Value) {
+			errs = append(errs, fmt.Errorf("line %d: %s: unknown key %q", k.Line, what, k.Value))
+		}
+	}
+	return errs
+}
+
+// decodeErrors turns a decoding error into one error per problem, each
+// starting with its line as yaml reports it, followed by what.
+func decodeErrors(err error, what string) []error {
+	var te *yaml.TypeError
+	if !errors.As(err, &te) {
+		return []error{fmt.Errorf("%s: %w", what, err)}
+	}
+	errs := make([]error, len(te.Errors))
+	for i, e := range te.Errors {
+		if line, msg, ok := strings.Cut(e, ": "); ok && strings.HasPrefix(line, "line ") {
+			errs[i] = fmt.Errorf("%s: %s: %s", line, what, msg)
+		} else {
+			errs[i] = fmt.Errorf("%s: %s", what, e)
+		}
+	}
+	return errs
+}

@@ -1,0 +1,380 @@
+package alerts
+
+import (
+	"cmp"
+	"errors"
+	"fmt"
+	"maps"
+	"regexp"
+	"slices"
+	"strings"
+	"text/template"
+	"time"
+
+	"github.com/robfig/cron/v3"
+)
+
+// Kind names what a rule watches.
+type Kind string
+
+// The rule kinds.
+const (
+	// KindFloor fires when a metric's whole confidence interval lies below
+	// the threshold.
+	KindFloor Kind = "floor"
+	// KindCeiling fires when a metric's whole confidence interval lies above
+	// the threshold.
+	KindCeiling Kind = "ceiling"
+	// KindDrop fires when a per-class recall, precision or specificity is
+	// lower than in a reference period by more than a margin (one-sided
+	// two-proportion test, Benjamini–Hochberg across the rule's classes).
+	KindDrop Kind = "drop"
+	// KindPrevalenceShift fires when the actual-class distribution differs
+	// from the reference period's.
+	KindPrevalenceShift Kind = "prevalence_shift"
+	// KindOutputShift fires when the predicted-class distribution (all
+	// predictions, labeled or not) differs from the reference period's.
+	KindOutputShift Kind = "output_shift"
+	// KindConfusionRise fires when the share of one actual class predicted
+	// as another rose against the reference period by more than a margin.
+	KindConfusionRise Kind = "confusion_rise"
+	// KindSilence fires when a model sent no prediction for a duration.
+	KindSilence Kind = "silence"
+)
+
+// AllModels as a rule's model applies the rule to every known model.
+const AllModels = "all"
+
+// Defaults a rule gets for the settings it leaves out.
+const (
+	DefaultSchedule = "* * * * *" // every minute, UTC
+	DefaultSeverity = "warning"
+	// DefaultMinCount is the smallest count a proportion is judged on: a
+	// rule of thumb, from memory, that a proportion estimated from fewer
+	// than about 30 examples is too noisy to alert on.
+	DefaultMinCount = 30
+)
+
+// Tests a shift rule may use.
+const (
+	TestChiSquare = "chi_square" // Pearson's X², no continuity correction
+	TestG         = "g_test"     // log-likelihood ratio G
+	TestNone      = "none"       // no significance test: PSI alone decides
+)
+
+// Intervals a floor or ceiling rule may use.
+const (
+	IntervalWilson   = "wilson"
+	IntervalJeffreys = "jeffreys"
+	IntervalNone     = "none" // compare the point value
+)
+
+// Rule is one configured alert rule. ParseRules builds rules from the
+// daemon's YAML config; a rule built in Go is checked the same way by New.
+type Rule struct {
+	Name string
+	Kind Kind
+	// Model is a model name, or AllModels.
+	Model string
+	// Window names the configured window the rule reads (unused by silence).
+	Window string
+	// Schedule is a five-field cron expression (or a descriptor such as
+	// "@every 5m") read in UTC; empty means DefaultSchedule.
+	Schedule string
+	Severity string
+	// Labels are added to the alert's labels; Annotations are text/template
+	// texts rendered with the evaluation's figures (see TemplateData).
+	Labels      map[string]string
+	Annotations map[string]string
+	// FireAfter and ResolveAfter are the consecutive evaluations with the
+	// condition met (clear) before the alert fires (resolves); 0 means 1.
+	FireAfter    int
+	ResolveAfter int
+	// Confidence overrides the daemon's confidence level; 0 keeps it.
+	Confidence float64
+	// MinCount is the least count a figure is judged on: the denominator of
+	// a proportion, in the current and the reference period alike; 0 means
+	// DefaultMinCount.
+	MinCount int64
+
+	// Metric is what floor, ceiling and drop rules read (drop: recall,
+	// precision or specificity; default recall).
+	Metric string
+	// Classes limits per-class rules to these classes; empty means all.
+	Classes []string
+	// Threshold is the floor or ceiling.
+	Threshold float64
+	// Interval is how a floor or ceiling rule bounds the metric: wilson
+	// (default), jeffreys, or none for metrics without an interval.
+	Interval string
+	// Margin is how much worse than the reference a figure must be, beyond
+	// chance, for drop and confusion_rise (a proportion, e.g. 0.05).
+	Margin float64
+	// Reference is the period drop, shift and confusion_rise rules compare
+	// the window with.
+	Reference Reference
+	// Test is the significance test of shift rules: chi_square (default),
+	// g_test, or none.
+	Test string
+	// PSIThreshold, when positive, also requires the population stability
+	// index of a shift rule to reach it.
+	PSIThreshold float64
+	// Pairs are the (actual, predicted) cells a confusion_rise rule
+	// watches; empty means every off-diagonal cell.
+	Pairs []Pair
+	// SilentFor is how long a model may send no prediction (silence).
+	SilentFor time.Duration
+}
+
+// Reference is a comparison period: another configured window, or a fixed
+// range of buckets [From, To).
+type Reference struct {
+	Window   string
+	From, To time.Time
+}
+
+// String describes the reference for messages.
+func (r Reference) String() string {
+	if r.Window != "" {
+		return "window " + r.Window
+	}
+	return r.From.Format(time.RFC3339) + " to " + r.To.Format(time.RFC3339)
+}
+
+// Pair is one off-diagonal cell of the confusion matrix.
+type Pair struct {
+	Actual    string `yaml:"actual"`
+	Predicted string `yaml:"predicted"`
+}
+
+// rule is a checked rule with its parsed parts.
+type rule struct {
+	Rule
+	schedule    cron.Schedule
+	annotations map[string]*template.Template
+	metric      metricSpec
+}
+
+// fieldError is a problem with one setting of a rule or notifier; key is
+// the YAML key, so that the parser can add its line.
+type fieldError struct {
+	key string
+	msg string
+}
+
+func (e fieldError) Error() string { return e.key + ": " + e.msg }
+
+var (
+	nameRE      = regexp.MustCompile(`^[A-Za-z0-9][A-Za-z0-9_.:-]*$`)
+	labelNameRE = regexp.MustCompile(`^[A-Za-z_][A-Za-z0-9_]*$`)
+)
+
+// reservedLabels are set by the evaluator on every alert.
+var reservedLabels = []string{"alertname", "model", "class", "predicted", "severity"}
+
+// needsReference reports whether rules of the kind compare with a
+// reference period.
+func (k Kind) needsReference() bool {
+	switch k {
+	case KindDrop, KindPrevalenceShift, KindOutputShift, KindConfusionRise:
+		return true
+	}
+	return false
+}
+
+// valid reports whether k is one of the kinds.
+func (k Kind) valid() bool {
+	switch k {
+	case KindFloor, KindCeiling, KindDrop, KindPrevalenceShift, KindOutputShift, KindConfusionRise, KindSilence:
+		return true
+	}
+	return false
+}
+
+// withDefaults fills in the settings left out.
+func (r Rule) withDefaults() Rule {
+	r.Schedule = cmp.Or(r.Schedule, DefaultSchedule)
+	r.Severity = cmp.Or(r.Severity, DefaultSeverity)
+	r.FireAfter = cmp.Or(r.FireAfter, 1)
+	r.ResolveAfter = cmp.Or(r.ResolveAfter, 1)
+	r.MinCount = cmp.Or(r.MinCount, DefaultMinCount)
+	switch r.Kind {
+	case KindFloor, KindCeiling:
+		r.Interval = cmp.Or(r.Interval, IntervalWilson)
+	case KindDrop:
+		r.Metric = cmp.Or(r.Metric, "recall")
+	case KindPrevalenceShift, KindOutputShift:
+		r.Test = cmp.Or(r.Test, TestChiSquare)
+	}
+	return r
+}
+
+// compile checks a rule (defaults filled in) and parses its schedule,
+// metric and templates. It returns every problem found.
+func compile(r Rule) (*rule, []fieldError) {
+	var errs []fieldError
+	bad := func(key, format string, args ...any) {
+		errs = append(errs, fieldError{key, fmt.Sprintf(format, args...)})
+	}
+	c := &rule{Rule: r}
+
+	switch {
+	case r.Name == "":
+		bad("name", "required")
+	case !nameRE.MatchString(r.Name):
+		bad("name", "%q: use letters, digits and _ . : - (starting with a letter or digit)", r.Name)
+	}
+	if !r.Kind.valid() {
+		bad("kind", "%q is not one of floor, ceiling, drop, prevalence_shift, output_shift, confusion_rise, silence", r.Kind)
+		return c, errs
+	}
+	if r.Model == "" {
+		bad("model", "required (a model name, or %q)", AllModels)
+	}
+	if r.Kind != KindSilence && r.Window == "" {
+		bad("window", "required")
+	}
+	if s, err := cron.ParseStandard(r.Schedule); err != nil {
+		bad("schedule", "%q: %v", r.Schedule, err)
+	} else {
+		c.schedule = s
+	}
+	for _, k := range slices.Sorted(maps.Keys(r.Labels)) {
+		switch {
+		case !labelNameRE.MatchString(k):
+			bad("labels", "%q is not a valid label name", k)
+		case slices.Contains(reservedLabels, k):
+			bad("labels", "%q is set by classwatch and cannot be overridden", k)
+		}
+	}
+	c.annotations = make(map[string]*template.Template, len(r.Annotations))
+	for _, k := range slices.Sorted(maps.Keys(r.Annotations)) {
+		t, err := template.New(k).Option("missingkey=error").Parse(r.Annotations[k])
+		if err != nil {
+			bad("annotations", "%s: %v", k, err)
+			continue
+		}
+		c.annotations[k] = t
+	}
+	if r.FireAfter < 1 {
+		bad("fire_after", "must be at least 1")
+	}
+	if r.ResolveAfter < 1 {
+		bad("resolve_after", "must be at least 1")
+	}
+	if r.Confidence != 0 && !(r.Confidence > 0 && r.Confidence < 1) {
+		bad("confidence", "%g must lie strictly between 0 and 1", r.Confidence)
+	}
+	if r.MinCount < 1 {
+		bad("min_count", "must be at least 1")
+	}
+
+	switch r.Kind {
+	case KindFloor, KindCeiling:
+		spec, ok := metricSpecs[r.Metric]
+		switch {
+		case r.Metric == "":
+			bad("metric", "required")
+		case !ok:
+			bad("metric", "%q is not one of %s", r.Metric, strings.Join(slices.Sorted(maps.Keys(metricSpecs)), ", "))
+		default:
+			c.metric = spec
+			if !spec.perClass && len(r.Classes) > 0 {
+				bad("classes", "metric %s is not per class", r.Metric)
+			}
+			switch r.Interval {
+			case IntervalWilson, IntervalJeffreys:
+				if spec.counts == nil {
+					bad("interval", "metric %s is not a proportion and has no %s interval; set interval: none to compare its point value", r.Metric, r.Interval)
+				}
+			case IntervalNone:
+			default:
+				bad("interval", "%q is not one of wilson, jeffreys, none", r.Interval)
+			}
+		}
+		if ok && !(r.Threshold >= spec.min && r.Threshold <= 1) {
+			bad("threshold", "%g must lie between %g and 1", r.Threshold, spec.min)
+		}
+	case KindDrop:
+		switch r.Metric {
+		case "recall", "precision", "specificity":
+			c.metric = metricSpecs[r.Metric]
+		default:
+			bad("metric", "%q: a drop rule compares recall, precision or specificity", r.Metric)
+		}
+	case KindConfusionRise:
+		for _, p := range r.Pairs {
+			switch {
+			case p.Actual == "" || p.Predicted == "":
+				bad("pairs", "each pair needs actual and predicted")
+			case p.Actual == p.Predicted:
+				bad("pairs", "%s→%s is on the diagonal; confusion_rise watches errors", p.Actual, p.Predicted)
+			}
+		}
+	case KindPrevalenceShift, KindOutputShift:
+		switch r.Test {
+		case TestChiSquare, TestG:
+		case TestNone:
+			if r.PSIThreshold == 0 {
+				bad("psi_threshold", "required when test is none")
+			}
+		default:
+			bad("test", "%q is not one of chi_square, g_test, none", r.Test)
+		}
+		if r.PSIThreshold < 0 {
+			bad("psi_threshold", "must not be negative")
+		}
+	case KindSilence:
+		if r.SilentFor <= 0 {
+			bad("silent_for", "required and positive")
+		}
+	}
+	if r.Kind == KindDrop || r.Kind == KindConfusionRise {
+		if !(r.Margin >= 0 && r.Margin < 1) {
+			bad("margin", "%g must lie in [0, 1)", r.Margin)
+		}
+	}
+	if r.Kind.needsReference() {
+		ref := r.Reference
+		switch {
+		case ref.Window != "" && (!ref.From.IsZero() || !ref.To.IsZero()):
+			bad("reference", "give either a window or from/to, not both")
+		case ref.Window != "":
+			if ref.Window == r.Window {
+				bad("reference", "window %s is the rule's own window", ref.Window)
+			}
+		case ref.From.IsZero() || ref.To.IsZero():
+			bad("reference", "required: a window, or from and to")
+		case !ref.From.Before(ref.To):
+			bad("reference", "from %s is not before to %s", ref.From.Format(time.RFC3339), ref.To.Format(time.RFC3339))
+		}
+	}
+	return c, errs
+}
+
+// checkRules compiles every rule and checks that names are unique.
+func checkRules(rules []Rule) ([]*rule, error) {
+	out := make([]*rule, 0, len(rules))
+	seen := make(map[string]bool, len(rules))
+	var errs []error
+	for i, r := range rules {
+		c, fe := compile(r.withDefaults())
+		for _, e := range fe {
+			errs = append(errs, fmt.Errorf("rule %s: %w", ruleLabel(r.Name, i), e))
+		}
+		if seen[r.Name] {
+			errs = append(errs, fmt.Errorf("rule %s: name: repeated", ruleLabel(r.Name, i)))
+		}
+		seen[r.Name] = true
+		out = append(out, c)
+	}
+	return out, errors.Join(errs...)
+}
+
+// ruleLabel names rule i for messages.
+func ruleLabel(name string, i int) string {
+	if name == "" {
+		return fmt.Sprintf("#%d", i+1)
+	}
+	return fmt.Sprintf("%q", name)
+}

@@ -1,0 +1,93 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"time"
+
+	"github.com/classwatch/classwatch/windows/api"
+	"github.com/classwatch/classwatch/windows/store"
+)
+
+// runAudit is "classwatch audit": one model's confusion matrix and figures
+// over a past, bucket-aligned period, optionally as known at an earlier time.
+func runAudit(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := newFlagSet("audit", "audit --model M --from T --to T [--as-of T] [--segment S] [--format table|json|csv]", stderr)
+	path := fs.String("config", "", "config `file` (YAML), for the database and the model's bucket")
+	database := fs.String("database", "", "PostgreSQL `URL`, overriding the config and "+databaseURLEnv)
+	model := fs.String("model", "", "the `model` to report on (required)")
+	from := fs.String("from", "", "period start, RFC 3339, aligned to the model's bucket (required)")
+	to := fs.String("to", "", "period end (exclusive), RFC 3339, aligned to the bucket (required)")
+	asOf := fs.String("as-of", "", "report the labels as known at this RFC 3339 `time` (default: now)")
+	segment := fs.String("segment", "", "restrict to one `segment`")
+	format := fs.String("format", "table", "output `format`: table, json or csv")
+	if err := parseFlags(fs, args, 0); err != nil {
+		return err
+	}
+	if *model == "" || *from == "" || *to == "" {
+		fs.Usage()
+		return usagef("audit: --model, --from and --to are required")
+	}
+	switch *format {
+	case "table", "json", "csv":
+	default:
+		return usagef("audit: --format %q is not table, json or csv", *format)
+	}
+	q := api.MatrixQuery{Model: *model}
+	var err error
+	if q.From, err = parseTimeFlag("from", *from); err != nil {
+		return err
+	}
+	if q.To, err = parseTimeFlag("to", *to); err != nil {
+		return err
+	}
+	if *asOf != "" {
+		t, err := parseTimeFlag("as-of", *asOf)
+		if err != nil {
+			return err
+		}
+		q.AsOf = &t
+	}
+	fs.Visit(func(f *flag.Flag) {
+		if f.Name == "segment" {
+			q.Segment = segment
+		}
+	})
+
+	cfg, err := loadConfigWithFlags(*path, "", *database)
+	if err != nil {
+		return err
+	}
+	q.Bucket, _ = cfg.modelWindows(*model)
+	st, err := openStore(ctx, cfg)
+	if err != nil {
+		return err
+	}
+	defer st.Close()
+	if err := st.Ping(ctx); err != nil {
+		return fmt.Errorf("audit: %w", err)
+	}
+	rep, err := api.MatrixReport(ctx, st, q, time.Now().UTC(), cfg.Confidence)
+	var reqErr *api.RequestError
+	switch {
+	case errors.As(err, &reqErr):
+		return usagef("audit: %s", reqErr.Msg)
+	case errors.Is(err, store.ErrUnknownModel):
+		return fmt.Errorf("audit: unknown model %q", *model)
+	case err != nil:
+		return fmt.Errorf("audit: %w", err)
+	}
+	return api.WriteReport(stdout, rep, *format)
+}
+
+// parseTimeFlag parses an RFC 3339 flag value, naming the flag on error.
+func parseTimeFlag(name, v string) (time.Time, error) {
+	t, err := time.Parse(time.RFC3339Nano, v)
+	if err != nil {
+		return time.Time{}, usagef("--%s: %q is not an RFC 3339 time (like 2026-03-01T00:00:00Z)", name, v)
+	}
+	return t.UTC(), nil
+}

@@ -1,0 +1,60 @@
+package main
+
+import (
+	"context"
+	"fmt"
+	"io"
+	"log/slog"
+	"os"
+)
+
+// runServe is "classwatch serve": load the config, wire the daemon and serve
+// until SIGINT/SIGTERM.
+func runServe(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := newFlagSet("serve", "serve [--config F] [--listen ADDR] [--database URL]", stderr)
+	path := fs.String("config", "", "config `file` (YAML); without it, the defaults")
+	listen := fs.String("listen", "", "listen `address`, overriding the config's listen")
+	database := fs.String("database", "", "PostgreSQL `URL`, overriding the config and "+databaseURLEnv)
+	logJSON := fs.Bool("log-json", false, "log JSON lines instead of text")
+	if err := parseFlags(fs, args, 0); err != nil {
+		return err
+	}
+	cfg, err := loadConfigWithFlags(*path, *listen, *database)
+	if err != nil {
+		return err
+	}
+	log := newLogger(stderr, *logJSON)
+	d, err := newDaemon(ctx, cfg, log)
+	if err != nil {
+		return err
+	}
+	fmt.Fprintf(stdout, "classwatch listening on http://%s/\n", d.addr())
+	return d.serve(ctx)
+}
+
+// loadConfigWithFlags loads the config file and applies the command-line
+// overrides, which win over both the file and the environment.
+func loadConfigWithFlags(path, listen, database string) (config, error) {
+	cfg, err := loadConfig(path, os.Getenv)
+	if err != nil {
+		return cfg, err
+	}
+	if listen != "" {
+		cfg.Listen = listen
+	}
+	if database != "" {
+		cfg.Database = database
+	}
+	if err := cfg.validate(); err != nil {
+		return cfg, err
+	}
+	return cfg, nil
+}
+
+// newLogger returns the process logger writing to w.
+func newLogger(w io.Writer, jsonLines bool) *slog.Logger {
+	if jsonLines {
+		return slog.New(slog.NewJSONHandler(w, nil))
+	}
+	return slog.New(slog.NewTextHandler(w, nil))
+}

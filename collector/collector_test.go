@@ -1,0 +1,905 @@
+package collector_test
+
+import (
+	"bytes"
+	"compress/gzip"
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"net/http"
+	"net/http/httptest"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"slices"
+	"strings"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"github.com/prometheus/client_golang/prometheus/testutil"
+
+	"github.com/classwatch/classwatch/collector"
+	"github.com/classwatch/classwatch/windows/store"
+	"github.com/classwatch/classwatch/windows/store/pgstore"
+	"github.com/classwatch/classwatch/windows/store/pgtest"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+)
+
+const (
+	ndjson   = "application/x-ndjson"
+	jsonType = "application/json"
+)
+
+// receiveTime is the fixed clock of the tests' collectors.
+func receiveTime() time.Time { return time.Date(2026, 3, 1, 12, 30, 0, 0, time.UTC) }
+
+func TestMain(m *testing.M) { pgtest.Main(m) }
+
+// backend opens a fresh, migrated store of one kind for a test; reopen
+// opens the same database again.
+type backend struct {
+	name string
+	open func(tb testing.TB) (st store.Store, reopen func(testing.TB) store.Store)
+}
+
+func sqliteBackend() backend {
+	return backend{"sqlite", func(tb testing.TB) (store.Store, func(testing.TB) store.Store) {
+		path := filepath.Join(tb.TempDir(), "classwatch.db")
+		return openStore(tb, path), func(tb testing.TB) store.Store { return openStore(tb, path) }
+	}}
+}
+
+func postgresBackend() backend {
+	return backend{"postgres", func(tb testing.TB) (store.Store, func(testing.TB) store.Store) {
+		url := pgtest.URL(tb)
+		return openPostgres(tb, url), func(tb testing.TB) store.Store { return openPostgres(tb, url) }
+	}}
+}
+
+// eachStore runs test against the embedded SQLite file and against
+// PostgreSQL (skipped without a server, see pgtest).
+func eachStore(t *testing.T, test func(t *testing.T, be backend)) {
+	for _, be := range []backend{sqliteBackend(), postgresBackend()} {
+		t.Run(be.name, func(t *testing.T) { test(t, be) })
+	}
+}
+
+func openPostgres(tb testing.TB, url string) store.Store {
+	tb.Helper()
+	ctx := context.Background()
+	st, err := pgstore.Open(ctx, url, pgstore.Options{})
+	if err != nil {
+		tb.Fatalf("open postgres store: %v", err)
+	}
+	tb.Cleanup(func() { st.Close() })
+	if err := st.Migrate(ctx); err != nil {
+		tb.Fatalf("migrate: %v", err)
+	}
+	return st
+}
+
+// bundle is one test's collector on a fresh store behind a real HTTP
+// server.
+type bundle struct {
+	store  store.Store
+	reopen func(testing.TB) store.Store
+	reg    *prometheus.Registry
+	col    *collector.Collector
+	srv    *httptest.Server
+
+	mu        sync.Mutex
+	commits   []commit
+	registers map[string][]string
+}
+
+type commit struct {
+	changes store.Changes
+	latest  map[string]time.Time
+}
+
+func openStore(tb testing.TB, path string) *sqlitestore.Store {
+	tb.Helper()
+	ctx := context.Background()
+	st, err := sqlitestore.Open(ctx, path, sqlitestore.Options{})
+	if err != nil {
+		tb.Fatalf("open store: %v", err)
+	}
+	tb.Cleanup(func() { st.Close() })
+	if err := st.Migrate(ctx); err != nil {
+		tb.Fatalf("migrate: %v", err)
+	}
+	return st
+}
+
+// testModels are a fictional card-screening model with fixed classes and a
+// fictional support-desk router that registers new classes up to five.
+func testModels() []collector.ModelPolicy {
+	return []collector.ModelPolicy{
+		{Name: "card-fraud", Classes: []string{"legit", "fraud"}},
+		{Name: "ticket-route", Classes: []string{"billing", "outage"}, AutoRegister: true, MaxClasses: 3},
+	}
+}
+
+func setup(tb testing.TB, be backend, edit func(*collector.Options)) *bundle {
+	tb.Helper()
+	b := &bundle{reg: prometheus.NewRegistry(), registers: map[string][]string{}}
+	b.store, b.reopen = be.open(tb)
+	opts := collector.Options{
+		Store:      b.store,
+		Models:     testModels(),
+		Registerer: b.reg,
+		Now:        receiveTime,
+		CommitFunc: func(ch store.Changes, latest map[string]time.Time) {
+			b.mu.Lock()
+			defer b.mu.Unlock()
+			b.commits = append(b.commits, commit{ch, latest})
+		},
+		RegisterFunc: func(model string, classes []string) {
+			b.mu.Lock()
+			defer b.mu.Unlock()
+			b.registers[model] = classes
+		},
+	}
+	if edit != nil {
+		edit(&opts)
+	}
+	var err error
+	if b.col, err = collector.New(opts); err != nil {
+		tb.Fatalf("new collector: %v", err)
+	}
+	if err := b.col.Prepare(context.Background()); err != nil {
+		tb.Fatalf("prepare: %v", err)
+	}
+	mux := http.NewServeMux()
+	b.col.Register(mux)
+	mux.Handle("GET /metrics", promhttp.HandlerFor(b.reg, promhttp.HandlerOpts{}))
+	b.srv = httptest.NewServer(mux)
+	tb.Cleanup(b.srv.Close)
+	return b
+}
+
+// reply is the response contract of the ingest endpoints; decoding refuses
+// unknown fields so that the shape is pinned.
+type reply struct {
+	Accepted   int        `json:"accepted"`
+	Duplicates int        `json:"duplicates"`
+	Rejected   []rejected `json:"rejected"`
+	Error      string     `json:"error"`
+}
+
+type rejected struct {
+	Line  int    `json:"line"`
+	Error string `json:"error"`
+}
+
+func (b *bundle) post(tb testing.TB, path, contentType, body string, header ...string) (int, reply, http.Header) {
+	tb.Helper()
+	req, err := http.NewRequest(http.MethodPost, b.srv.URL+path, strings.NewReader(body))
+	if err != nil {
+		tb.Fatal(err)
+	}
+	if contentType != "" {
+		req.Header.Set("Content-Type", contentType)
+	}
+	for i := 0; i+1 < len(header); i += 2 {
+		req.Header.Set(header[i], header[i+1])
+	}
+	return do(tb, req)
+}
+
+func do(tb testing.TB, req *http.Request) (int, reply, http.Header) {
+	tb.Helper()
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		tb.Fatalf("post: %v", err)
+	}
+	defer resp.Body.Close()
+	var r reply
+	dec := json.NewDecoder(resp.Body)
+	dec.DisallowUnknownFields()
+	if err := dec.Decode(&r); err != nil {
+		tb.Fatalf("decode %d response: %v", resp.StatusCode, err)
+	}
+	if r.Rejected == nil {
+		tb.Errorf("response has no rejected array (status %d)", resp.StatusCode)
+	}
+	return resp.StatusCode, r, resp.Header
+}
+
+func (b *bundle) modelInfo(tb testing.TB, name string) store.ModelInfo {
+	tb.Helper()
+	infos, err := b.store.Models(context.Background())
+	if err != nil {
+		tb.Fatalf("models: %v", err)
+	}
+	for _, m := range infos {
+		if m.Name == name {
+			return m
+		}
+	}
+	tb.Fatalf("model %s not in the store", name)
+	return store.ModelInfo{}
+}
+
+// cells reads a model's matrix over all time as "actual/predicted" → n.
+func (b *bundle) cells(tb testing.TB, model string) map[string]int64 {
+	tb.Helper()
+	c, err := b.store.Counts(context.Background(), store.Query{Model: model, From: time.Unix(0, 0), To: receiveTime().Add(24 * time.Hour)})
+	if err != nil {
+		tb.Fatalf("counts: %v", err)
+	}
+	out := map[string]int64{}
+	for _, cell := range c.Cells {
+		if cell.N != 0 {
+			out[cell.Actual+"/"+cell.Predicted] += cell.N
+		}
+	}
+	return out
+}
+
+func checkRejected(tb testing.TB, got []rejected, want []rejected) {
+	tb.Helper()
+	if len(got) != len(want) {
+		tb.Errorf("rejected = %+v, want lines %+v", got, want)
+		return
+	}
+	for i := range want {
+		if got[i].Line != want[i].Line || !strings.Contains(got[i].Error, want[i].Error) {
+			tb.Errorf("rejected[%d] = {%d %q}, want line %d with error containing %q", i, got[i].Line, got[i].Error, want[i].Line, want[i].Error)
+		}
+	}
+}
+
+func lines(ls ...string) string { return strings.Join(ls, "\n") + "\n" }
+
+func TestPredictionsMixedLines(t *testing.T) { eachStore(t, testPredictionsMixedLines) }
+
+func testPredictionsMixedLines(t *testing.T, be backend) {
+	b := setup(t, be, nil)
+	body := lines(
+		`{"model":"card-fraud","id":"txn-1","at":"2026-03-01T12:00:00Z","predicted":"fraud","scores":{"fraud":0.91,"legit":0.09},"segment":"web"}`,
+		``,
+		`{"model":"card-fraud","id":"txn-2","at":"2026-03-01T12:07:00+01:00","predicted":"legit"}`,
+		`{"model":"card-fraud","id":"txn-3","predicted":"legit"`,
+		`{"model":"card-fraud","id":"txn-4","predicted":"legit","predicition":"fraud"}`,
+		`{"model":"card-fraud","predicted":"legit"}`,
+		`{"model":"card-fraud","id":"txn-5","at":"2026-03-01 12:00","predicted":"legit"}`,
+		`{"model":"card-fraud","id":"txn-6","predicted":"legit","scores":{"legit":1.5}}`,
+		`{"model":"card-fraud","id":"txn-7","predicted":"chargeback"}`,
+		`{"model":"loan-default","id":"x-1","predicted":"yes"}`,
+		`   `,
+		`{"model":"card-fraud","id":"txn-1","at":"2026-03-01T12:00:00Z","predicted":"fraud","scores":{"fraud":0.91,"legit":0.09},"segment":"web"}`,
+		`{"model":"card-fraud","id":"txn-2","at":"2026-03-01T11:07:00Z","predicted":"fraud"}`,
+		`{"model":"card-fraud","id":7,"predicted":"legit"}`,
+		`[1,2]`,
+		`{"model":"card-fraud","id":"txn-8","predicted":"legit","scores":{"refund":0.2}}`,
+		`{"model":"card-fraud","id":"txn-9","predicted":"legit","at":"2026-03-01T13:00:00Z"}`,
+		`{"model":"card-fraud","id":"txn-10","predicted":"legit"} {"x":1}`,
+	)
+	code, r, _ := b.post(t, "/v1/predictions", ndjson, body)
+	if code != http.StatusOK {
+		t.Fatalf("status = %d, want 200 (%+v)", code, r)
+	}
+	// Line 2 and 11 are blank: skipped and not counted.
+	if r.Accepted != 2 || r.Duplicates != 1 {
+		t.Errorf("accepted, duplicates = %d, %d; want 2, 1", r.Accepted, r.Duplicates)
+	}
+	checkRejected(t, r.Rejected, []rejected{
+		{4, "invalid JSON"},
+		{5, `unknown field "predicition"`},
+		{6, `"id" is required`},
+		{7, `"at": "2026-03-01 12:00" is not an RFC 3339 time`},
+		{8, `"scores": "legit" is 1.5, outside [0, 1]`},
+		{9, `class "chargeback" is not registered for model "card-fraud"`},
+		{10, `unknown model "loan-default"`},
+		{13, "prediction txn-2 already recorded with different content; the first one stands"},
+		{14, `"id" must be a string, not a number`},
+		{15, "a line must be a JSON object, not an array"},
+		{16, `class "refund" is not registered for model "card-fraud"`},
+		{17, "more than 15m0s ahead of the receive time"},
+		{18, "unexpected data after the JSON object"},
+	})
+	if got, want := r.Accepted+r.Duplicates+len(r.Rejected), 16; got != want {
+		t.Errorf("accepted+duplicates+rejected = %d, want %d non-blank lines", got, want)
+	}
+
+	info := b.modelInfo(t, "card-fraud")
+	if info.Predictions != 2 {
+		t.Errorf("stored predictions = %d, want 2", info.Predictions)
+	}
+	// txn-2 at 12:07+01:00 is 11:07Z: the latest stored time is txn-1's.
+	if want := time.Date(2026, 3, 1, 12, 0, 0, 0, time.UTC); !info.LatestAt.Equal(want) {
+		t.Errorf("latest at = %v, want %v", info.LatestAt, want)
+	}
+	if got := testutil.ToFloat64(metric(t, b, "classwatch_predictions_received_total", "card-fraud")); got != 3 {
+		t.Errorf("predictions received = %v, want 3 (two stored, one duplicate)", got)
+	}
+	if got, want := testutil.ToFloat64(metric(t, b, "classwatch_last_prediction_timestamp_seconds", "card-fraud")), float64(time.Date(2026, 3, 1, 12, 0, 0, 0, time.UTC).Unix()); got != want {
+		t.Errorf("last prediction timestamp = %v, want %v", got, want)
+	}
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	if len(b.commits) != 1 {
+		t.Fatalf("commit hook calls = %d, want 1", len(b.commits))
+	}
+	if got := b.commits[0].latest["card-fraud"]; !got.Equal(time.Date(2026, 3, 1, 12, 0, 0, 0, time.UTC)) {
+		t.Errorf("commit hook latest = %v", got)
+	}
+	var predicted int64
+	for _, d := range b.commits[0].changes.Predicted {
+		predicted += d.N
+	}
+	if predicted != 2 {
+		t.Errorf("commit hook predicted deltas sum to %d, want 2", predicted)
+	}
+}
+
+// metric returns the collector behind one series for testutil.ToFloat64.
+func metric(tb testing.TB, b *bundle, name string, labels ...string) prometheus.Collector {
+	tb.Helper()
+	return seriesCollector{b.reg, name, labels}
+}
+
+// seriesCollector exposes one gathered series of a registry as a collector.
+type seriesCollector struct {
+	reg    *prometheus.Registry
+	name   string
+	labels []string
+}
+
+func (s seriesCollector) Describe(chan<- *prometheus.Desc) {}
+
+func (s seriesCollector) Collect(ch chan<- prometheus.Metric) {
+	mfs, err := s.reg.Gather()
+	if err != nil {
+		return
+	}
+	for _, mf := range mfs {
+		if mf.GetName() != s.name {
+			continue
+		}
+		for _, m := range mf.GetMetric() {
+			var vals []string
+			for _, lp := range m.GetLabel() {
+				vals = append(vals, lp.GetValue())
+			}
+			if !slices.Equal(vals, s.labels) {
+				continue
+			}
+			desc := prometheus.NewDesc(s.name, "series", nil, nil)
+			switch {
+			case m.Counter != nil:
+				ch <- prometheus.MustNewConstMetric(desc, prometheus.CounterValue, m.GetCounter().GetValue())
+			case m.Gauge != nil:
+				ch <- prometheus.MustNewConstMetric(desc, prometheus.GaugeValue, m.GetGauge().GetValue())
+			}
+		}
+	}
+}
+
+func TestLabelsJoin(t *testing.T) { eachStore(t, testLabelsJoin) }
+
+func testLabelsJoin(t *testing.T, be backend) {
+	b := setup(t, be, nil)
+	code, r, _ := b.post(t, "/v1/predictions", ndjson, lines(
+		`{"model":"card-fraud","id":"a","at":"2026-03-01T12:00:00Z","predicted":"fraud"}`,
+		`{"model":"card-fraud","id":"b","at":"2026-03-01T12:01:00Z","predicted":"legit"}`,
+		`{"model":"card-fraud","id":"c","at":"2026-03-01T12:02:00Z","predicted":"legit"}`,
+	))
+	if code != http.StatusOK || r.Accepted != 3 {
+		t.Fatalf("predictions: %d %+v", code, r)
+	}
+	code, r, _ = b.post(t, "/v1/labels", ndjson, lines(
+		`{"model":"card-fraud","id":"a","actual":"fraud","at":"2026-03-01T12:10:00Z"}`, // matched
+		`{"model":"card-fraud","id":"b","actual":"fraud","at":"2026-03-01T12:10:00Z"}`, // matched
+		`{"model":"card-fraud","id":"a","actual":"fraud","at":"2026-03-01T12:10:00Z"}`, // duplicate
+		`{"model":"card-fraud","id":"b","actual":"legit","at":"2026-03-01T12:20:00Z"}`, // corrected
+		`{"model":"card-fraud","id":"z","actual":"fraud","at":"2026-03-01T12:20:00Z"}`, // early
+		`{"model":"card-fraud","id":"c","actual":"refund"}`,                            // unknown class
+		`{"model":"card-fraud","id":"c","actual":"legit","predicted":"legit"}`,         // unknown field
+		`{"model":"parcel-inspect","id":"p-1","actual":"dented"}`,                      // unknown model
+	))
+	if code != http.StatusOK {
+		t.Fatalf("labels status = %d (%+v)", code, r)
+	}
+	if r.Accepted != 4 || r.Duplicates != 1 {
+		t.Errorf("accepted, duplicates = %d, %d; want 4, 1", r.Accepted, r.Duplicates)
+	}
+	checkRejected(t, r.Rejected, []rejected{
+		{6, `class "refund" is not registered`},
+		{7, `unknown field "predicted"`},
+		{8, `unknown model "parcel-inspect"`},
+	})
+	// The early label joins when its prediction arrives.
+	code, r, _ = b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"z","at":"2026-03-01T12:03:00Z","predicted":"legit"}`)
+	if code != http.StatusOK || r.Accepted != 1 {
+		t.Fatalf("late prediction: %d %+v", code, r)
+	}
+	got := b.cells(t, "card-fraud")
+	want := map[string]int64{"fraud/fraud": 1, "legit/legit": 1, "fraud/legit": 1}
+	if fmt.Sprint(got) != fmt.Sprint(want) {
+		t.Errorf("cells = %v, want %v", got, want)
+	}
+	for result, want := range map[string]float64{"matched": 2, "duplicate": 1, "corrected": 1, "early": 1, "rejected": 2, "implied": 0} {
+		if got := testutil.ToFloat64(metric(t, b, "classwatch_labels_received_total", "card-fraud", result)); got != want {
+			t.Errorf("labels received{result=%s} = %v, want %v", result, got, want)
+		}
+	}
+	// The unknown model's rejection is counted under model="".
+	if got := testutil.ToFloat64(metric(t, b, "classwatch_labels_received_total", "", "rejected")); got != 1 {
+		t.Errorf(`labels received{model="",result="rejected"} = %v, want 1`, got)
+	}
+}
+
+func TestJSONBodies(t *testing.T) { eachStore(t, testJSONBodies) }
+
+func testJSONBodies(t *testing.T, be backend) {
+	b := setup(t, be, nil)
+	code, r, _ := b.post(t, "/v1/predictions", jsonType, `{"model":"card-fraud","id":"one","predicted":"legit"}`)
+	if code != http.StatusOK || r.Accepted != 1 || len(r.Rejected) != 0 {
+		t.Errorf("single object: %d %+v", code, r)
+	}
+	code, r, _ = b.post(t, "/v1/predictions", jsonType+"; charset=utf-8", `[
+		{"model":"card-fraud","id":"two","predicted":"legit"},
+		{"model":"card-fraud","id":"three"},
+		"text",
+		{"model":"card-fraud","id":"one","predicted":"legit"}
+	]`)
+	if code != http.StatusOK || r.Accepted != 1 || r.Duplicates != 1 {
+		t.Errorf("array: %d %+v", code, r)
+	}
+	// Array elements are numbered by index + 1, not by text line.
+	checkRejected(t, r.Rejected, []rejected{{2, `"predicted" is required`}, {3, "a line must be a JSON object, not a string"}})
+
+	for name, body := range map[string]string{
+		"broken array":  `[{"model":"card-fraud","id":"four","predicted":"legit"}, {"model":`,
+		"two objects":   `{"model":"card-fraud","id":"four","predicted":"legit"} {"model":"card-fraud","id":"five","predicted":"legit"}`,
+		"not JSON":      `model=card-fraud`,
+		"empty":         ` `,
+		"empty array":   `[]`,
+		"trailing data": `[{"model":"card-fraud","id":"four","predicted":"legit"}] x`,
+	} {
+		code, r, _ := b.post(t, "/v1/predictions", jsonType, body)
+		if code != http.StatusBadRequest || r.Error == "" || r.Accepted != 0 {
+			t.Errorf("%s: %d %+v, want 400 with an error", name, code, r)
+		}
+	}
+	if got := b.modelInfo(t, "card-fraud").Predictions; got != 2 {
+		t.Errorf("stored predictions = %d, want 2 (nothing of the refused bodies)", got)
+	}
+}
+
+func TestStatusCodes(t *testing.T) { eachStore(t, testStatusCodes) }
+
+func testStatusCodes(t *testing.T, be backend) {
+	b := setup(t, be, func(o *collector.Options) {
+		o.Tokens = []collector.Token{
+			{Name: "desk", Secret: "s3cret-desk", Models: []string{"ticket-route"}},
+			{Name: "all", Secret: "s3cret-all"},
+		}
+		o.Limits.MaxBodyBytes = 4096
+		o.Limits.MaxLineBytes = 200
+	})
+	good := `{"model":"card-fraud","id":"ok-%d","predicted":"legit"}` + "\n"
+	desk := "Bearer s3cret-desk"
+	all := "Bearer s3cret-all"
+	var gz bytes.Buffer
+	zw := gzip.NewWriter(&gz)
+	fmt.Fprintf(zw, good, 100)
+	zw.Close()
+	var bomb bytes.Buffer
+	zw = gzip.NewWriter(&bomb)
+	zw.Write(bytes.Repeat([]byte("\n"), 10000))
+	zw.Close()
+
+	cases := []struct {
+		name        string
+		contentType string
+		body        string
+		header      []string
+		want        int
+		wantError   string
+	}{
+		{"no token", ndjson, fmt.Sprintf(good, 1), nil, 401, "bearer token"},
+		{"wrong token", ndjson, fmt.Sprintf(good, 1), []string{"Authorization", "Bearer nope"}, 401, "bearer token"},
+		{"basic auth", ndjson, fmt.Sprintf(good, 1), []string{"Authorization", "Basic czNjcmV0LWFsbA=="}, 401, "bearer token"},
+		{"token not allowed for the model", ndjson, fmt.Sprintf(good, 1), []string{"Authorization", desk}, 403, "may not write"},
+		{"token allowed", ndjson, fmt.Sprintf(good, 2), []string{"Authorization", all}, 200, ""},
+		{"lowercase scheme", ndjson, fmt.Sprintf(good, 3), []string{"Authorization", "bearer s3cret-all"}, 200, ""},
+		{"missing content type", "", fmt.Sprintf(good, 4), []string{"Authorization", all}, 415, "content type"},
+		{"text/plain", "text/plain", fmt.Sprintf(good, 4), []string{"Authorization", all}, 415, "text/plain"},
+		{"latin-1", ndjson + "; charset=iso-8859-1", fmt.Sprintf(good, 4), []string{"Authorization", all}, 415, "charset"},
+		{"empty body", ndjson, "\n\n", []string{"Authorization", all}, 400, "no lines"},
+		{"every line rejected", ndjson, "{}\n{}\n", []string{"Authorization", all}, 400, "every line"},
+		{"body over the limit", ndjson, strings.Repeat(fmt.Sprintf(good, 5), 100), []string{"Authorization", all}, 413, "4096-byte"},
+		{"line over the limit", ndjson, fmt.Sprintf(good, 6) + `{"model":"card-fraud","id":"` + strings.Repeat("x", 300) + `"}` + "\n", []string{"Authorization", all}, 413, "line 2 is longer than the 200-byte"},
+		{"gzip", ndjson, gz.String(), []string{"Authorization", all, "Content-Encoding", "gzip"}, 200, ""},
+		{"gzip over the limit once decoded", ndjson, bomb.String(), []string{"Authorization", all, "Content-Encoding", "gzip"}, 413, "4096-byte"},
+		{"brotli", ndjson, fmt.Sprintf(good, 7), []string{"Authorization", all, "Content-Encoding", "br"}, 415, "encoding"},
+		{"broken gzip", ndjson, "not gzip", []string{"Authorization", all, "Content-Encoding", "gzip"}, 400, "gzip"},
+	}
+	for _, tc := range cases {
+		t.Run(tc.name, func(t *testing.T) {
+			code, r, h := b.post(t, "/v1/predictions", tc.contentType, tc.body, tc.header...)
+			if code != tc.want {
+				t.Fatalf("status = %d, want %d (%+v)", code, tc.want, r)
+			}
+			if !strings.Contains(r.Error, tc.wantError) {
+				t.Errorf("error = %q, want it to contain %q", r.Error, tc.wantError)
+			}
+			if code == 401 && h.Get("WWW-Authenticate") == "" {
+				t.Errorf("401 without WWW-Authenticate")
+			}
+		})
+	}
+
+	// A token allowed for some lines' models only gets the other lines
+	// rejected, with 200 for the rest.
+	code, r, _ := b.post(t, "/v1/predictions", ndjson, lines(
+		`{"model":"ticket-route","id":"t-1","predicted":"billing"}`,
+		`{"model":"card-fraud","id":"c-1","predicted":"legit"}`,
+	), "Authorization", desk)
+	if code != 200 || r.Accepted != 1 {
+		t.Errorf("mixed models: %d %+v", code, r)
+	}
+	checkRejected(t, r.Rejected, []rejected{{2, `token "desk" may not write model "card-fraud"`}})
+
+	// The body over the limit sent chunked (no Content-Length) is caught
+	// while reading.
+	req, _ := http.NewRequest(http.MethodPost, b.srv.URL+"/v1/predictions", io.MultiReader(strings.NewReader(strings.Repeat(fmt.Sprintf(good, 8), 100))))
+	req.Header.Set("Content-Type", ndjson)
+	req.Header.Set("Authorization", all)
+	req.ContentLength = -1
+	if code, r, _ := do(t, req); code != 413 {
+		t.Errorf("chunked body over the limit: %d %+v", code, r)
+	}
+	if got := b.modelInfo(t, "card-fraud").Predictions; got != 3 {
+		t.Errorf("stored card-fraud predictions = %d, want 3 (ok-2, ok-3, ok-100)", got)
+	}
+}
+
+func TestStoreUnavailable(t *testing.T) { eachStore(t, testStoreUnavailable) }
+
+func testStoreUnavailable(t *testing.T, be backend) {
+	b := setup(t, be, nil)
+	if code, r, _ := b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"kept","predicted":"legit"}`); code != 200 {
+		t.Fatalf("first batch: %d %+v", code, r)
+	}
+	b.store.Close()
+	code, r, h := b.post(t, "/v1/predictions", ndjson, lines(
+		`{"model":"card-fraud","id":"lost-1","predicted":"legit"}`,
+		`{"model":"card-fraud","id":"lost-2","predicted":"fraud"}`,
+	))
+	if code != http.StatusServiceUnavailable {
+		t.Fatalf("status = %d, want 503 (%+v)", code, r)
+	}
+	if h.Get("Retry-After") != "5" {
+		t.Errorf("Retry-After = %q, want 5", h.Get("Retry-After"))
+	}
+	if r.Accepted != 0 || r.Error == "" {
+		t.Errorf("response = %+v", r)
+	}
+	if code, _, _ := b.post(t, "/v1/labels", ndjson, `{"model":"card-fraud","id":"kept","actual":"legit"}`); code != 503 {
+		t.Errorf("labels status = %d, want 503", code)
+	}
+	if got := testutil.ToFloat64(metric(t, b, "classwatch_collector_store_errors_total", "ingest_predictions")); got != 1 {
+		t.Errorf("store errors = %v, want 1", got)
+	}
+	if got := testutil.ToFloat64(metric(t, b, "classwatch_predictions_received_total", "card-fraud")); got != 1 {
+		t.Errorf("predictions received = %v, want 1: a failed batch is not counted", got)
+	}
+
+	reopened := b.reopen(t)
+	infos, err := reopened.Models(context.Background())
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, m := range infos {
+		if m.Name == "card-fraud" && (m.Predictions != 1 || m.Labeled != 0) {
+			t.Errorf("after the failed batches: %d predictions, %d labeled; want 1, 0", m.Predictions, m.Labeled)
+		}
+	}
+}
+
+func TestOverload(t *testing.T) { eachStore(t, testOverload) }
+
+func testOverload(t *testing.T, be backend) {
+	entered := make(chan struct{})
+	gate := make(chan struct{})
+	b := setup(t, be, func(o *collector.Options) {
+		o.Limits.MaxInFlight = 1
+		o.Limits.QueueWait = 50 * time.Millisecond
+		o.Limits.RetryAfter = 2 * time.Second
+		o.CommitFunc = func(store.Changes, map[string]time.Time) {
+			entered <- struct{}{}
+			<-gate
+		}
+	})
+	first := make(chan int, 1)
+	go func() {
+		resp, err := http.Post(b.srv.URL+"/v1/predictions", ndjson, strings.NewReader(`{"model":"card-fraud","id":"slow","predicted":"legit"}`))
+		if err != nil {
+			first <- 0
+			return
+		}
+		resp.Body.Close()
+		first <- resp.StatusCode
+	}()
+	<-entered // the first batch holds the only slot
+	if got := testutil.ToFloat64(metric(t, b, "classwatch_collector_in_flight_batches")); got != 1 {
+		t.Errorf("in flight = %v, want 1", got)
+	}
+	code, r, h := b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"queued","predicted":"legit"}`)
+	if code != http.StatusServiceUnavailable || h.Get("Retry-After") != "2" || !strings.Contains(r.Error, "in flight") {
+		t.Errorf("second batch while the slot is taken: %d %q %+v", code, h.Get("Retry-After"), r)
+	}
+	close(gate)
+	if code := <-first; code != 200 {
+		t.Errorf("first batch: status %d, want 200", code)
+	}
+	go func() {
+		for range entered {
+		}
+	}()
+	if code, r, _ := b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"queued","predicted":"legit"}`); code != 200 || r.Accepted != 1 {
+		t.Errorf("retry after the slot freed: %d %+v", code, r)
+	}
+	close(entered)
+	if got := testutil.ToFloat64(metric(t, b, "classwatch_collector_queue_timeouts_total", "predictions")); got != 1 {
+		t.Errorf("queue timeouts = %v, want 1", got)
+	}
+	if got := testutil.ToFloat64(metric(t, b, "classwatch_collector_in_flight_batches")); got != 0 {
+		t.Errorf("in flight after the batches = %v, want 0", got)
+	}
+}
+
+func TestAutoRegister(t *testing.T) { eachStore(t, testAutoRegister) }
+
+func testAutoRegister(t *testing.T, be backend) {
+	b := setup(t, be, func(o *collector.Options) {
+		o.AutoRegisterModels = true
+		o.MaxModels = 3
+		o.Defaults = collector.ModelPolicy{MaxClasses: 2}
+	})
+	code, r, _ := b.post(t, "/v1/predictions", ndjson, lines(
+		`{"model":"ticket-route","id":"t-1","predicted":"refund"}`,
+		`{"model":"ticket-route","id":"t-2","predicted":"outage","scores":{"outage":0.7,"spam":0.3}}`,
+		`{"model":"ticket-route","id":"t-3","predicted":"refund"}`,
+		`{"model":"card-fraud","id":"c-1","predicted":"chargeback"}`,
+		`{"model":"claim-triage","id":"k-1","predicted":"fast-track"}`,
+		`{"model":"claim-triage","id":"k-2","predicted":"review","scores":{"review":0.6,"reject":0.4}}`,
+		`{"model":"Claim Triage","id":"k-3","predicted":"review"}`,
+		`{"model":"loan-default","id":"l-1","predicted":"repaid"}`,
+	))
+	if code != 200 {
+		t.Fatalf("status = %d (%+v)", code, r)
+	}
+	if r.Accepted != 3 {
+		t.Errorf("accepted = %d, want 3", r.Accepted)
+	}
+	// ticket-route holds billing, outage and may add one class (max 3):
+	// refund comes first, spam is refused.
+	checkRejected(t, r.Rejected, []rejected{
+		{2, `class "spam" would pass max_classes (3) of model "ticket-route"`},
+		{4, `class "chargeback" is not registered for model "card-fraud"`},
+		{6, `would pass max_classes (2) of model "claim-triage"`},
+		{7, "may only hold letters"},
+		{8, `unknown model "loan-default": registering it would pass max_models (3)`},
+	})
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	for model, want := range map[string][]string{
+		"ticket-route": {"billing", "outage", "refund"},
+		"claim-triage": {"fast-track", "review"},
+		"card-fraud":   {"legit", "fraud"},
+	} {
+		if got := b.registers[model]; !slices.Equal(got, want) {
+			t.Errorf("registered classes of %s = %v, want %v", model, got, want)
+		}
+	}
+	for _, m := range []string{"Claim Triage", "loan-default"} {
+		if _, ok := b.registers[m]; ok {
+			t.Errorf("model %q was registered", m)
+		}
+	}
+}
+
+// TestClassesFromAnotherReplica checks that classes registered by another
+// collector on the same database (one with a newer configuration, one
+// auto-registering) are picked up on a cache miss.
+func TestClassesFromAnotherReplica(t *testing.T) { eachStore(t, testClassesFromAnotherReplica) }
+
+func testClassesFromAnotherReplica(t *testing.T, be backend) {
+	b := setup(t, be, nil)
+	newer := testModels()
+	newer[0].Classes = append(newer[0].Classes, "chargeback")
+	other, err := collector.New(collector.Options{Store: b.store, Models: newer, Registerer: prometheus.NewRegistry(), Now: receiveTime})
+	if err != nil {
+		t.Fatal(err)
+	}
+	res, err := other.IngestPredictions(context.Background(), strings.NewReader(lines(
+		`{"model":"ticket-route","id":"t-9","predicted":"refund"}`,
+		`{"model":"card-fraud","id":"c-9","predicted":"chargeback"}`,
+	)), collector.BatchOptions{})
+	if err != nil || res.Accepted != 2 {
+		t.Fatalf("other replica: %+v %v", res, err)
+	}
+	code, r, _ := b.post(t, "/v1/labels", ndjson, lines(
+		`{"model":"ticket-route","id":"t-9","actual":"refund"}`,
+		`{"model":"card-fraud","id":"c-9","actual":"chargeback"}`,
+	))
+	if code != 200 || r.Accepted != 2 {
+		t.Errorf("labels for the other replica's classes: %d %+v", code, r)
+	}
+	b.mu.Lock()
+	defer b.mu.Unlock()
+	for model, want := range map[string][]string{
+		"ticket-route": {"billing", "outage", "refund"},
+		"card-fraud":   {"legit", "fraud", "chargeback"},
+	} {
+		if got := b.registers[model]; !slices.Equal(got, want) {
+			t.Errorf("registered classes of %s = %v, want %v", model, got, want)
+		}
+	}
+}
+
+func TestIngestFile(t *testing.T) { eachStore(t, testIngestFile) }
+
+func testIngestFile(t *testing.T, be backend) {
+	b := setup(t, be, func(o *collector.Options) { o.Limits.MaxLineBytes = 200 })
+	var sb strings.Builder
+	for i := 1; i <= 10; i++ {
+		switch i {
+		case 4:
+			sb.WriteString(`{"model":"card-fraud","id":"f-4","predicted":"maybe"}` + "\n")
+		case 6:
+			sb.WriteString("\n")
+		case 8:
+			sb.WriteString(`{"model":"card-fraud","id":"` + strings.Repeat("y", 250) + `","predicted":"legit"}` + "\n")
+		default:
+			fmt.Fprintf(&sb, `{"model":"card-fraud","id":"f-%d","at":"2026-03-01T10:%02d:00Z","predicted":"legit"}`+"\n", i, i)
+		}
+	}
+	var progress []collector.Progress
+	res, err := b.col.IngestPredictions(context.Background(), strings.NewReader(sb.String()), collector.BatchOptions{
+		BatchLines: 3,
+		Progress:   func(p collector.Progress) { progress = append(progress, p) },
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if res.Accepted != 7 || res.Duplicates != 0 || len(res.Rejected) != 2 {
+		t.Errorf("result = %+v", res)
+	}
+	if len(res.Rejected) == 2 {
+		if le := res.Rejected[0]; le.Line != 4 || !strings.Contains(le.Error, `class "maybe"`) {
+			t.Errorf("rejected[0] = %+v", le)
+		}
+		if le := res.Rejected[1]; le.Line != 8 || !strings.Contains(le.Error, "longer than the 200-byte limit") {
+			t.Errorf("rejected[1] = %+v", le)
+		}
+	}
+	// Nine non-blank lines in batches of three: lines 1-3, 4-7 (6 is blank), 8-10.
+	var ends []int
+	for _, p := range progress {
+		ends = append(ends, p.Line)
+	}
+	if want := []int{3, 7, 10}; !slices.Equal(ends, want) {
+		t.Errorf("progress lines = %v, want %v", ends, want)
+	}
+	if got := progress[len(progress)-1]; got.Accepted != 7 || got.Rejected != 2 {
+		t.Errorf("last progress = %+v", got)
+	}
+}
+
+func TestIngestFileStoreFailure(t *testing.T) { eachStore(t, testIngestFileStoreFailure) }
+
+func testIngestFileStoreFailure(t *testing.T, be backend) {
+	b := setup(t, be, nil)
+	var sb strings.Builder
+	for i := 1; i <= 5; i++ {
+		fmt.Fprintf(&sb, `{"model":"card-fraud","id":"g-%d","predicted":"legit"}`+"\n", i)
+	}
+	res, err := b.col.IngestPredictions(context.Background(), strings.NewReader(sb.String()), collector.BatchOptions{
+		BatchLines: 2,
+		Progress:   func(collector.Progress) { b.store.Close() },
+	})
+	var se *collector.StoreError
+	if !errors.As(err, &se) || se.FirstLine != 3 || se.LastLine != 4 {
+		t.Fatalf("err = %v, want a store error for lines 3-4", err)
+	}
+	if res.Accepted != 2 {
+		t.Errorf("accepted = %d, want the first batch's 2", res.Accepted)
+	}
+}
+
+func TestFutureLimit(t *testing.T) { eachStore(t, testFutureLimit) }
+
+func testFutureLimit(t *testing.T, be backend) {
+	b := setup(t, be, func(o *collector.Options) { o.Limits.MaxFuture = -1 })
+	code, r, _ := b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"far","predicted":"legit","at":"2030-01-01T00:00:00Z"}`)
+	if code != 200 || r.Accepted != 1 {
+		t.Errorf("with no future limit: %d %+v", code, r)
+	}
+	code, r, _ = b.post(t, "/v1/predictions", ndjson, lines(
+		`{"model":"card-fraud","id":"far-2","predicted":"legit","at":"2200-01-01T00:00:00Z"}`,
+		`{"model":"card-fraud","id":"old","predicted":"legit","at":"1969-12-31T23:59:59Z"}`,
+	))
+	if code != 400 {
+		t.Errorf("times outside the bucket range: status %d", code)
+	}
+	checkRejected(t, r.Rejected, []rejected{{1, "not in the years 1970 to 2199"}, {2, "not in the years 1970 to 2199"}})
+}
+
+func TestNewRejectsBadOptions(t *testing.T) {
+	st := openStore(t, filepath.Join(t.TempDir(), "x.db"))
+	cases := map[string]collector.Options{
+		"no store":               {Registerer: prometheus.NewRegistry()},
+		"no registerer":          {Store: st},
+		"bad model name":         {Store: st, Registerer: prometheus.NewRegistry(), Models: []collector.ModelPolicy{{Name: "a/b"}}},
+		"default label no class": {Store: st, Registerer: prometheus.NewRegistry(), Models: []collector.ModelPolicy{{Name: "m", Classes: []string{"x"}, DefaultLabel: "y", LabelTimeout: time.Hour}}},
+		"timeout without label":  {Store: st, Registerer: prometheus.NewRegistry(), Models: []collector.ModelPolicy{{Name: "m", Classes: []string{"x"}, LabelTimeout: time.Hour}}},
+		"model twice":            {Store: st, Registerer: prometheus.NewRegistry(), Models: []collector.ModelPolicy{{Name: "m"}, {Name: "m"}}},
+		"empty token":            {Store: st, Registerer: prometheus.NewRegistry(), Tokens: []collector.Token{{Name: "t"}}},
+	}
+	for name, opts := range cases {
+		if _, err := collector.New(opts); err == nil {
+			t.Errorf("%s: New succeeded", name)
+		}
+	}
+	reg := prometheus.NewRegistry()
+	if _, err := collector.New(collector.Options{Store: st, Registerer: reg}); err != nil {
+		t.Fatal(err)
+	}
+	if _, err := collector.New(collector.Options{Store: st, Registerer: reg}); err == nil {
+		t.Errorf("a second collector on the same registry registered its metrics")
+	}
+}
+
+// TestPromtoolCheckMetrics runs promtool's linter over the collector's
+// exposition after some traffic and a maintenance run.
+func TestPromtoolCheckMetrics(t *testing.T) {
+	promtool, err := exec.LookPath("promtool")
+	if err != nil {
+		if os.Getenv("CI") == "true" {
+			t.Fatalf("promtool not found: %v", err)
+		}
+		t.Skip("promtool not installed")
+	}
+	b := setup(t, sqliteBackend(), nil)
+	b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"p","predicted":"legit"}`)
+	b.post(t, "/v1/labels", ndjson, `{"model":"card-fraud","id":"p","actual":"legit"}`+"\n{}\n")
+	if err := b.col.Maintain(context.Background(), receiveTime()); err != nil {
+		t.Fatal(err)
+	}
+	resp, err := http.Get(b.srv.URL + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	scrape, err := io.ReadAll(resp.Body)
+	resp.Body.Close()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, name := range []string{
+		"classwatch_predictions_received_total", "classwatch_labels_received_total",
+		"classwatch_collector_request_duration_seconds_bucket", "classwatch_collector_batch_lines_bucket",
+		"classwatch_collector_in_flight_batches", "classwatch_last_prediction_timestamp_seconds",
+		"classwatch_collector_rejected_lines_total", "classwatch_collector_maintenance_last_success_timestamp_seconds",
+	} {
+		if !bytes.Contains(scrape, []byte(name)) {
+			t.Errorf("scrape lacks %s", name)
+		}
+	}
+	cmd := exec.Command(promtool, "check", "metrics")
+	cmd.Stdin = bytes.NewReader(scrape)
+	out, err := cmd.CombinedOutput()
+	if err != nil {
+		t.Errorf("promtool check metrics: %v\n%s", err, out)
+	}
+}

@@ -1,0 +1,81 @@
+// Package collector is classwatch's ingest side: it decodes and validates
+// predictions and labels line by line, resolves models and classes, writes
+// each batch through the store in one transaction, keeps the ingest metrics,
+// and runs the join's maintenance jobs (default labels after label_timeout,
+// early-label expiry, raw-row retention).
+//
+// The same path serves HTTP push (Register) and bulk backfill from files
+// (IngestPredictions, IngestLabels), so a line is judged the same way
+// whichever way it came in.
+//
+// # HTTP contract
+//
+// POST /v1/predictions and POST /v1/labels take a body of
+// application/x-ndjson (also accepted as application/ndjson), read line by
+// line and never whole, or application/json holding one object or an array
+// of objects. A gzip Content-Encoding is accepted; the size limits apply to
+// the decoded bytes as well. The body of every answer has the shape
+//
+//	{"accepted":N,"duplicates":N,"rejected":[{"line":L,"error":"..."}]}
+//
+// plus an "error" string when the request as a whole was refused. Line
+// numbers are 1-based physical lines of an NDJSON body; blank lines are
+// skipped and not counted, so accepted + duplicates + len(rejected) equals
+// the number of non-blank lines. For a JSON array, line is the element's
+// index + 1; a single JSON object is line 1. A bad line never sinks the
+// good lines of its batch; a body that is not valid JSON as a whole (a JSON
+// array with a syntax error) cannot be split into lines and is refused.
+//
+// Status codes:
+//
+//   - 200: at least one line was accepted or a duplicate; rejected lines
+//     are listed.
+//   - 400: the body holds no line, cannot be parsed, or every line was
+//     rejected.
+//   - 401: tokens are configured and the request has no valid
+//     "Authorization: Bearer" token.
+//   - 403: every line was rejected because the token may not write its
+//     model. A token that may not write some lines' model only gets those
+//     lines rejected.
+//   - 413: the body passes Limits.MaxBodyBytes or one line passes
+//     Limits.MaxLineBytes; nothing is kept.
+//   - 415: a content type or encoding other than the above.
+//   - 503 with Retry-After: the store could not commit (nothing of the
+//     batch is kept), or Limits.MaxInFlight batches were already running
+//     and no slot freed within Limits.QueueWait. Overload is answered with
+//     503, not 429, because it is the server's state, not the client's rate.
+//
+// A batch is answered 2xx only after its transaction committed. Class
+// registration (auto_register) happens before the batch's transaction and
+// stays even if the batch then fails.
+//
+// # Validation
+//
+// Unknown fields are rejected, so a typo ("predicition") is caught rather
+// than silently dropped. model, id and predicted (labels: actual) are
+// required strings; id is at most 256 bytes and segment at most 128. at is
+// an RFC 3339 time in the years 1970 to 2199, by default the receive time
+// (class and model names are case-sensitive). A time more than
+// Limits.MaxFuture ahead of the receive time is rejected, because one such
+// line would move the model's watermark and empty every window. scores is
+// an optional object of class → number in [0, 1] (JSON has no NaN or
+// infinity, so the numbers are finite); its keys must be classes of the
+// model and count as classes for auto_register. An unknown model is
+// rejected unless AutoRegisterModels, up to MaxModels models; an unknown
+// class is rejected unless the model's policy auto-registers classes, up
+// to MaxClasses. Model names are 1 to 128 bytes of letters, digits, '.',
+// '_', ':' and '-' (they appear in URL paths); class names 1 to 128 bytes.
+//
+// # Metrics
+//
+// classwatch_predictions_received_total{model} counts prediction lines of
+// committed batches that were stored or were duplicates (conflicts are
+// rejections). classwatch_labels_received_total{model,result} counts label
+// lines by outcome, plus implied (default labels applied) and expired
+// (early labels dropped) from the maintenance jobs, and rejected. A rejected
+// line whose model is not registered is counted with model="" so that
+// invalid input cannot create unbounded label values. The other metrics are
+// named classwatch_collector_* and classwatch_last_prediction_timestamp_seconds.
+//
+// A Collector is safe for concurrent use by multiple goroutines.
+package collector

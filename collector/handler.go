@@ -1,0 +1,268 @@
+package collector
+
+import (
+	"compress/gzip"
+	"context"
+	"crypto/sha256"
+	"crypto/subtle"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"mime"
+	"net/http"
+	"strconv"
+	"strings"
+	"time"
+)
+
+// response is the body of every ingest answer.
+type response struct {
+	Result
+	// Error explains why the request as a whole was refused.
+	Error string `json:"error,omitempty"`
+}
+
+// Register adds POST /v1/predictions and POST /v1/labels to mux.
+func (c *Collector) Register(mux *http.ServeMux) {
+	mux.HandleFunc("POST /v1/predictions", c.handler(predictions))
+	mux.HandleFunc("POST /v1/labels", c.handler(labels))
+}
+
+func (c *Collector) handler(k kind) http.HandlerFunc {
+	return func(w http.ResponseWriter, r *http.Request) {
+		start := time.Now()
+		code := c.serve(w, r, k)
+		c.metrics.requestDuration.WithLabelValues(k.String(), strconv.Itoa(code)).Observe(time.Since(start).Seconds())
+	}
+}
+
+// serve answers one ingest request and returns the status it sent.
+func (c *Collector) serve(w http.ResponseWriter, r *http.Request, k kind) int {
+	tok, ok := c.authorize(r)
+	if !ok {
+		w.Header().Set("WWW-Authenticate", `Bearer realm="classwatch"`)
+		return c.refuse(w, http.StatusUnauthorized, "missing or invalid bearer token")
+	}
+	format, err := requestFormat(r.Header.Get("Content-Type"))
+	if err != nil {
+		return c.refuse(w, http.StatusUnsupportedMediaType, err.Error())
+	}
+	if r.ContentLength > c.limits.MaxBodyBytes {
+		return c.refuse(w, http.StatusRequestEntityTooLarge, c.tooLarge())
+	}
+	body, err := c.body(w, r)
+	if err != nil {
+		var ue unsupportedEncodingError
+		if errors.As(err, &ue) {
+			return c.refuse(w, http.StatusUnsupportedMediaType, err.Error())
+		}
+		return c.refuse(w, http.StatusBadRequest, err.Error())
+	}
+
+	if !c.acquire(r.Context()) {
+		if r.Context().Err() == nil {
+			c.metrics.queueTimeouts.WithLabelValues(k.String()).Inc()
+		}
+		c.retryAfter(w)
+		return c.refuse(w, http.StatusServiceUnavailable, "too many batches in flight; retry later")
+	}
+	res, err := c.ingest(r.Context(), newLineSource(body, format, c.limits.MaxLineBytes), ingestRun{kind: k, token: tok, longLineFatal: true})
+	c.release()
+
+	var (
+		maxBytes *http.MaxBytesError
+		tooLong  *LineTooLongError
+		bodyErr  *BodyError
+		storeErr *StoreError
+	)
+	switch {
+	case errors.As(err, &maxBytes):
+		return c.refuse(w, http.StatusRequestEntityTooLarge, c.tooLarge())
+	case errors.As(err, &tooLong):
+		return c.refuse(w, http.StatusRequestEntityTooLarge, tooLong.Error())
+	case errors.As(err, &bodyErr):
+		return c.refuse(w, http.StatusBadRequest, bodyErr.Error())
+	case errors.As(err, &storeErr):
+		if r.Context().Err() == nil {
+			c.log.Warn("ingest batch not committed", "endpoint", k.String(), "err", err)
+		}
+		c.retryAfter(w)
+		return c.refuse(w, http.StatusServiceUnavailable, "store unavailable; nothing of this batch was kept, retry later")
+	case err != nil:
+		return c.refuse(w, http.StatusBadRequest, fmt.Sprintf("read body: %v", err))
+	}
+
+	resp := response{Result: res}
+	code := http.StatusOK
+	if res.Accepted+res.Duplicates == 0 {
+		code = http.StatusBadRequest
+		switch {
+		case len(res.Rejected) == 0:
+			resp.Error = "body holds no lines"
+		case allForbidden(res.Rejected):
+			code = http.StatusForbidden
+			resp.Error = "the token may not write any line's model"
+		default:
+			resp.Error = "every line was rejected"
+		}
+	}
+	return c.write(w, code, resp)
+}
+
+func allForbidden(rej []LineError) bool {
+	for _, le := range rej {
+		if le.reason != reasonForbidden {
+			return false
+		}
+	}
+	return true
+}
+
+func (c *Collector) tooLarge() string {
+	return fmt.Sprintf("body is larger than the %d-byte limit", c.limits.MaxBodyBytes)
+}
+
+// authorize finds the request's token. With no tokens configured every
+// request passes with a nil token.
+func (c *Collector) authorize(r *http.Request) (*tokenHash, bool) {
+	if len(c.tokens) == 0 {
+		return nil, true
+	}
+	scheme, secret, ok := strings.Cut(r.Header.Get("Authorization"), " ")
+	if !ok || !strings.EqualFold(scheme, "Bearer") || secret == "" {
+		return nil, false
+	}
+	// Comparing fixed-size digests of every token, without stopping at a
+	// match, keeps the time independent of which token (and of its length).
+	sum := sha256.Sum256([]byte(strings.TrimSpace(secret)))
+	var found *tokenHash
+	for i := range c.tokens {
+		if subtle.ConstantTimeCompare(sum[:], c.tokens[i].sum[:]) == 1 {
+			found = &c.tokens[i]
+		}
+	}
+	return found, found != nil
+}
+
+// requestFormat maps a Content-Type to a Format.
+func requestFormat(contentType string) (Format, error) {
+	if contentType == "" {
+		return 0, errors.New("content type is missing; send application/x-ndjson or application/json")
+	}
+	mt, params, err := mime.ParseMediaType(contentType)
+	if err != nil {
+		return 0, fmt.Errorf("content type %q cannot be parsed", contentType)
+	}
+	if cs, ok := params["charset"]; ok && !strings.EqualFold(cs, "utf-8") {
+		return 0, fmt.Errorf("charset %q is not supported; send UTF-8", cs)
+	}
+	switch mt {
+	case "application/x-ndjson", "application/ndjson":
+		return NDJSON, nil
+	case "application/json":
+		return JSON, nil
+	}
+	return 0, fmt.Errorf("content type %s is not supported; send application/x-ndjson or application/json", mt)
+}
+
+type unsupportedEncodingError struct{ enc string }
+
+func (e unsupportedEncodingError) Error() string {
+	return fmt.Sprintf("content encoding %q is not supported; send gzip or none", e.enc)
+}
+
+// body caps the request body, and decodes gzip under the same cap.
+func (c *Collector) body(w http.ResponseWriter, r *http.Request) (io.Reader, error) {
+	body := http.MaxBytesReader(w, r.Body, c.limits.MaxBodyBytes)
+	switch enc := strings.ToLower(strings.TrimSpace(r.Header.Get("Content-Encoding"))); enc {
+	case "", "identity":
+		return body, nil
+	case "gzip", "x-gzip":
+		zr, err := gzip.NewReader(body)
+		if err != nil {
+			var mbe *http.MaxBytesError
+			if errors.As(err, &mbe) {
+				return nil, err
+			}
+			return nil, fmt.Errorf("read gzip body: %w", err)
+		}
+		return newCapReader(zr, c.limits.MaxBodyBytes), nil
+	default:
+		return nil, unsupportedEncodingError{enc: enc}
+	}
+}
+
+// capReader fails with *http.MaxBytesError once more than limit bytes
+// were read, so a small compressed body cannot expand without bound.
+type capReader struct {
+	r     io.Reader
+	left  int64
+	limit int64
+}
+
+func newCapReader(r io.Reader, limit int64) *capReader {
+	return &capReader{r: r, left: limit, limit: limit}
+}
+
+func (cr *capReader) Read(p []byte) (int, error) {
+	if cr.left <= 0 {
+		// One more byte tells a body of exactly the limit from a longer one.
+		var one [1]byte
+		if _, err := io.ReadFull(cr.r, one[:]); err != nil {
+			return 0, err
+		}
+		return 0, &http.MaxBytesError{Limit: cr.limit}
+	}
+	if int64(len(p)) > cr.left {
+		p = p[:cr.left]
+	}
+	n, err := cr.r.Read(p)
+	cr.left -= int64(n)
+	return n, err
+}
+
+// acquire takes an in-flight slot, waiting up to QueueWait.
+func (c *Collector) acquire(ctx context.Context) bool {
+	select {
+	case c.slots <- struct{}{}:
+	default:
+		t := time.NewTimer(c.limits.QueueWait)
+		defer t.Stop()
+		select {
+		case c.slots <- struct{}{}:
+		case <-t.C:
+			return false
+		case <-ctx.Done():
+			return false
+		}
+	}
+	c.metrics.inFlight.Inc()
+	return true
+}
+
+func (c *Collector) release() {
+	c.metrics.inFlight.Dec()
+	<-c.slots
+}
+
+func (c *Collector) retryAfter(w http.ResponseWriter) {
+	secs := int(math.Ceil(c.limits.RetryAfter.Seconds()))
+	w.Header().Set("Retry-After", strconv.Itoa(max(secs, 1)))
+}
+
+// refuse answers a request refused as a whole.
+func (c *Collector) refuse(w http.ResponseWriter, code int, msg string) int {
+	return c.write(w, code, response{Result: Result{Rejected: []LineError{}}, Error: msg})
+}
+
+func (c *Collector) write(w http.ResponseWriter, code int, resp response) int {
+	w.Header().Set("Content-Type", "application/json")
+	w.Header().Set("X-Content-Type-Options", "nosniff")
+	w.WriteHeader(code)
+	if err := json.NewEncoder(w).Encode(resp); err != nil {
+		c.log.Debug("write ingest response", "err", err)
+	}
+	return code
+}

@@ -1,0 +1,428 @@
+package collector
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"maps"
+	"slices"
+	"time"
+
+	"github.com/classwatch/classwatch/windows"
+	"github.com/classwatch/classwatch/windows/store"
+)
+
+// LineError is one rejected line.
+type LineError struct {
+	// Line is 1-based: the physical line of an NDJSON input, the element
+	// index + 1 of a JSON array.
+	Line  int    `json:"line"`
+	Error string `json:"error"`
+	// reason is the metric label of the rejection.
+	reason string
+}
+
+// Result counts the lines of an ingest. Accepted lines were newly stored,
+// duplicates were already known; the three add up to the non-blank lines
+// read.
+type Result struct {
+	Accepted   int         `json:"accepted"`
+	Duplicates int         `json:"duplicates"`
+	Rejected   []LineError `json:"rejected"`
+}
+
+// Progress reports a bulk ingest after each committed batch.
+type Progress struct {
+	// Line is the last line the committed batches cover; a failed run may
+	// be resumed after it.
+	Line       int
+	Accepted   int
+	Duplicates int
+	Rejected   int
+}
+
+// BatchOptions tune IngestPredictions and IngestLabels.
+type BatchOptions struct {
+	Format Format
+	// BatchLines is the number of non-blank lines per transaction; zero
+	// means DefaultBatchLines.
+	BatchLines int
+	// Progress, when set, is called after each committed batch.
+	Progress func(Progress)
+}
+
+// StoreError reports a batch the store could not commit; nothing of that
+// batch was kept.
+type StoreError struct {
+	// FirstLine and LastLine bound the lines of the failed batch.
+	FirstLine, LastLine int
+	Err                 error
+}
+
+// Error names the failed batch's lines and the cause.
+func (e *StoreError) Error() string {
+	return fmt.Sprintf("commit lines %d-%d: %v", e.FirstLine, e.LastLine, e.Err)
+}
+
+// Unwrap returns the store's error.
+func (e *StoreError) Unwrap() error { return e.Err }
+
+// kind is what an ingest carries.
+type kind int
+
+const (
+	predictions kind = iota
+	labels
+)
+
+// String returns the endpoint label of the kind.
+func (k kind) String() string {
+	if k == labels {
+		return "labels"
+	}
+	return "predictions"
+}
+
+// ingestRun is how one ingest treats its input.
+type ingestRun struct {
+	kind  kind
+	token *tokenHash // nil: every model allowed
+	// batchLines is the number of lines per transaction; 0 is one
+	// transaction for the whole input.
+	batchLines int
+	// longLineFatal makes an over-long line end the ingest instead of
+	// being rejected alone.
+	longLineFatal bool
+	progress      func(Progress)
+}
+
+// item is one parsed, valid-so-far line.
+type item struct {
+	line int
+	// classes names every class the line uses: predicted then score keys
+	// (sorted), or actual.
+	classes []string
+	pred    store.Prediction
+	label   store.Label
+}
+
+func (it *item) model(k kind) string {
+	if k == labels {
+		return it.label.Model
+	}
+	return it.pred.Model
+}
+
+// batch gathers the lines of one transaction.
+type batch struct {
+	first, last int
+	lines       int // non-blank lines
+	items       []item
+	rejected    []LineError
+	// rejectedModels holds, per rejected line in order, the model it named.
+	rejectedModels []string
+}
+
+func (b *batch) reject(line int, model, reason string, err error) {
+	b.rejected = append(b.rejected, LineError{Line: line, Error: err.Error(), reason: reason})
+	b.rejectedModels = append(b.rejectedModels, model)
+}
+
+// IngestPredictions reads predictions from r and stores them in
+// transactions of opts.BatchLines lines, judging each line as the HTTP
+// endpoint does (no token applies). An over-long line is rejected alone.
+// On a store failure it returns what the committed batches did together
+// with a *StoreError naming the failed batch's lines.
+func (c *Collector) IngestPredictions(ctx context.Context, r io.Reader, opts BatchOptions) (Result, error) {
+	return c.ingestFile(ctx, r, opts, predictions)
+}
+
+// IngestLabels is IngestPredictions for labels.
+func (c *Collector) IngestLabels(ctx context.Context, r io.Reader, opts BatchOptions) (Result, error) {
+	return c.ingestFile(ctx, r, opts, labels)
+}
+
+func (c *Collector) ingestFile(ctx context.Context, r io.Reader, opts BatchOptions, k kind) (Result, error) {
+	run := ingestRun{kind: k, batchLines: opts.BatchLines, progress: opts.Progress}
+	if run.batchLines <= 0 {
+		run.batchLines = DefaultBatchLines
+	}
+	return c.ingest(ctx, newLineSource(r, opts.Format, c.limits.MaxLineBytes), run)
+}
+
+// ingest runs the shared path: decode, validate, resolve models and
+// classes, commit, count.
+func (c *Collector) ingest(ctx context.Context, src lineSource, run ingestRun) (Result, error) {
+	res := Result{Rejected: []LineError{}}
+	b := batch{}
+	now := c.now()
+	for {
+		line, data, err := src.next()
+		if errors.Is(err, io.EOF) {
+			break
+		}
+		var tooLong *LineTooLongError
+		switch {
+		case errors.As(err, &tooLong) && !run.longLineFatal:
+			b.reject(line, "", reasonInvalid, fmt.Errorf("line is longer than the %d-byte limit", tooLong.Limit))
+		case err != nil:
+			return res, err
+		default:
+			c.parse(&b, run.kind, line, data, now)
+		}
+		if b.lines == 0 {
+			b.first = line
+		}
+		b.lines++
+		b.last = line
+		if run.batchLines > 0 && b.lines >= run.batchLines {
+			if err := c.flush(ctx, &b, run, now, &res); err != nil {
+				return res, err
+			}
+			b, now = batch{}, c.now()
+		}
+	}
+	if b.lines > 0 {
+		if err := c.flush(ctx, &b, run, now, &res); err != nil {
+			return res, err
+		}
+	}
+	return res, nil
+}
+
+// parse decodes one line into the batch, as an item or a rejection.
+func (c *Collector) parse(b *batch, k kind, line int, data []byte, now time.Time) {
+	it := item{line: line}
+	var err error
+	if k == labels {
+		it.label, err = parseLabel(data, now, c.limits.MaxFuture)
+		it.classes = []string{it.label.Actual}
+	} else {
+		it.pred, err = parsePrediction(data, now, c.limits.MaxFuture)
+		it.classes = append(make([]string, 0, 1+len(it.pred.Scores)), it.pred.Predicted)
+		for _, s := range slices.Sorted(maps.Keys(it.pred.Scores)) {
+			if s != it.pred.Predicted {
+				it.classes = append(it.classes, s)
+			}
+		}
+	}
+	if err != nil {
+		b.reject(line, it.model(k), reasonInvalid, err)
+		return
+	}
+	b.items = append(b.items, it)
+}
+
+// resolve checks each item's token permission, model and classes,
+// registering what the policies allow, and fills in prediction buckets.
+// Rejected items leave b.items. Only a store failure is returned.
+func (c *Collector) resolve(ctx context.Context, b *batch, k kind, tok *tokenHash) error {
+	var order []string
+	needs := map[string][]string{}
+	needed := map[string]map[string]bool{}
+	allowed := b.items[:0:0]
+	for _, it := range b.items {
+		m := it.model(k)
+		if tok != nil && !tok.allows(m) {
+			b.reject(it.line, m, reasonForbidden, fmt.Errorf("token %q may not write model %q", tok.name, m))
+			continue
+		}
+		allowed = append(allowed, it)
+		st := c.state(m)
+		for _, cl := range it.classes {
+			if st != nil && st.set[cl] {
+				continue
+			}
+			if needed[m] == nil {
+				needed[m] = map[string]bool{}
+				order = append(order, m)
+			}
+			if !needed[m][cl] {
+				needed[m][cl] = true
+				needs[m] = append(needs[m], cl)
+			}
+		}
+	}
+	b.items = allowed
+
+	refused := map[string]map[string]bool{}
+	for _, m := range order {
+		r, err := c.ensure(ctx, m, needs[m])
+		switch {
+		case errors.Is(err, errTooManyModels):
+			r = map[string]bool{modelRefused: true}
+		case err != nil:
+			return err
+		}
+		refused[m] = r
+	}
+
+	kept := b.items[:0]
+	for _, it := range b.items {
+		m := it.model(k)
+		if err := c.check(it, m, refused[m]); err != nil {
+			reason := reasonUnknownClass
+			var ce *classError
+			switch {
+			case errors.Is(err, errTooManyModels):
+				reason = reasonTooManyModels
+			case !errors.As(err, &ce):
+				reason = reasonUnknownModel
+			case ce.tooMany:
+				reason = reasonTooManyClasses
+			}
+			b.reject(it.line, m, reason, err)
+			continue
+		}
+		if k == predictions {
+			it.pred.Bucket = windows.BucketStart(it.pred.At, c.state(m).policy.Bucket)
+		}
+		kept = append(kept, it)
+	}
+	b.items = kept
+	return nil
+}
+
+// classError is a line naming a class its model does not have.
+type classError struct {
+	msg     string
+	tooMany bool
+}
+
+func (e *classError) Error() string { return e.msg }
+
+// modelRefused marks, in a refused-classes set, a model refused as a whole.
+// It cannot collide with a class: class names are never empty.
+const modelRefused = ""
+
+// check reports whether an item's model and classes are registered.
+func (c *Collector) check(it item, model string, refused map[string]bool) error {
+	st := c.state(model)
+	if st == nil {
+		if refused[modelRefused] {
+			return fmt.Errorf("unknown model %q: registering it would pass max_models (%d): %w", model, c.maxModels, errTooManyModels)
+		}
+		if c.autoModels {
+			if err := ValidModelName(model); err != nil {
+				return err
+			}
+		}
+		return fmt.Errorf("unknown model %q", model)
+	}
+	for _, cl := range it.classes {
+		switch {
+		case st.set[cl]:
+		case refused[cl]:
+			return &classError{tooMany: true, msg: fmt.Sprintf("class %q would pass max_classes (%d) of model %q", cl, st.policy.MaxClasses, model)}
+		default:
+			return &classError{msg: fmt.Sprintf("class %q is not registered for model %q", cl, model)}
+		}
+	}
+	return nil
+}
+
+// flush resolves and commits one batch and adds its outcome to res.
+func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time.Time, res *Result) error {
+	if err := c.resolve(ctx, b, run.kind, run.token); err != nil {
+		return &StoreError{FirstLine: b.first, LastLine: b.last, Err: err}
+	}
+	var (
+		changes store.Changes
+		latest  map[string]time.Time
+	)
+	endpoint := run.kind.String()
+	if len(b.items) > 0 {
+		var err error
+		if run.kind == labels {
+			changes, err = c.commitLabels(ctx, b, now, res)
+		} else {
+			changes, latest, err = c.commitPredictions(ctx, b, now, res)
+		}
+		if err != nil {
+			if ctx.Err() == nil {
+				c.metrics.storeErrors.WithLabelValues("ingest_" + endpoint).Inc()
+			}
+			return &StoreError{FirstLine: b.first, LastLine: b.last, Err: err}
+		}
+	}
+
+	for i, le := range b.rejected {
+		c.metrics.rejectedLines.WithLabelValues(endpoint, le.reason).Inc()
+		m := b.rejectedModels[i]
+		if c.state(m) == nil {
+			m = "" // unregistered names must not become label values
+		}
+		if run.kind == labels {
+			c.metrics.labelsReceived.WithLabelValues(m, resultRejected).Inc()
+		}
+	}
+	slices.SortFunc(b.rejected, func(x, y LineError) int { return x.Line - y.Line })
+	res.Rejected = append(res.Rejected, b.rejected...)
+	c.metrics.batchLines.WithLabelValues(endpoint).Observe(float64(b.lines))
+
+	c.noteLatest(latest)
+	if c.commitFunc != nil && (len(changes.Cells) > 0 || len(changes.Predicted) > 0 || len(latest) > 0) {
+		c.commitFunc(changes, latest)
+	}
+	if run.progress != nil {
+		run.progress(Progress{Line: b.last, Accepted: res.Accepted, Duplicates: res.Duplicates, Rejected: len(res.Rejected)})
+	}
+	return nil
+}
+
+func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Time, res *Result) (store.Changes, map[string]time.Time, error) {
+	in := make([]store.Prediction, len(b.items))
+	for i, it := range b.items {
+		in[i] = it.pred
+	}
+	out, err := c.store.IngestPredictions(ctx, in, now)
+	if err != nil {
+		return store.Changes{}, nil, fmt.Errorf("ingest predictions: %w", err)
+	}
+	if len(out.Outcomes) != len(in) {
+		return store.Changes{}, nil, fmt.Errorf("ingest predictions: %d outcomes for %d lines", len(out.Outcomes), len(in))
+	}
+	latest := map[string]time.Time{}
+	for i, o := range out.Outcomes {
+		p := in[i]
+		switch o {
+		case store.PredictionStored:
+			res.Accepted++
+			if p.At.After(latest[p.Model]) {
+				latest[p.Model] = p.At
+			}
+		case store.PredictionDuplicate:
+			res.Duplicates++
+		case store.PredictionConflict:
+			b.reject(b.items[i].line, p.Model, reasonConflict,
+				fmt.Errorf("prediction %s already recorded with different content; the first one stands", p.ID))
+			continue
+		}
+		c.metrics.predictionsReceived.WithLabelValues(p.Model).Inc()
+	}
+	return out.Changes, latest, nil
+}
+
+func (c *Collector) commitLabels(ctx context.Context, b *batch, now time.Time, res *Result) (store.Changes, error) {
+	in := make([]store.Label, len(b.items))
+	for i, it := range b.items {
+		in[i] = it.label
+	}
+	out, err := c.store.IngestLabels(ctx, in, now)
+	if err != nil {
+		return store.Changes{}, fmt.Errorf("ingest labels: %w", err)
+	}
+	if len(out.Outcomes) != len(in) {
+		return store.Changes{}, fmt.Errorf("ingest labels: %d outcomes for %d lines", len(out.Outcomes), len(in))
+	}
+	for i, o := range out.Outcomes {
+		if o == store.LabelDuplicate {
+			res.Duplicates++
+		} else {
+			res.Accepted++
+		}
+		c.metrics.labelsReceived.WithLabelValues(in[i].Model, o.String()).Inc()
+	}
+	return out.Changes, nil
+}

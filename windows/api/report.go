@@ -1,0 +1,400 @@
+package api
+
+import (
+	"context"
+	"encoding/csv"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"slices"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+	"time"
+
+	"github.com/classwatch/classwatch/windows"
+	"github.com/classwatch/classwatch/windows/store"
+)
+
+// RequestError is a query the caller got wrong: a missing or malformed
+// parameter, a period not aligned to the model's buckets. The HTTP API
+// answers it with 400.
+type RequestError struct {
+	Msg string
+}
+
+// Error returns the message.
+func (e *RequestError) Error() string { return e.Msg }
+
+func badRequest(format string, args ...any) error {
+	return &RequestError{Msg: fmt.Sprintf(format, args...)}
+}
+
+// MatrixQuery selects one model's figures over a past period.
+type MatrixQuery struct {
+	Model string
+	// From and To bound the buckets covered: starts in [From, To). Both
+	// must be multiples of Bucket.
+	From, To time.Time
+	// Bucket is the model's bucket width.
+	Bucket time.Duration
+	// Segment, when non-nil, restricts the figures to one segment.
+	Segment *string
+	// AsOf, when non-nil, asks for the labels as known at that time instead
+	// of the current ones.
+	AsOf *time.Time
+}
+
+// Report is a model's confusion matrix and metrics over a period: the body
+// of GET /v1/models/{model}/matrix and the output of classwatch audit.
+type Report struct {
+	Model string    `json:"model"`
+	From  time.Time `json:"from"`
+	To    time.Time `json:"to"`
+	// AsOf is the as-of time asked for, or the time of the read when none
+	// was: the figures use the labels known then.
+	AsOf    time.Time `json:"as_of"`
+	Segment *string   `json:"segment,omitempty"`
+	Figures
+}
+
+// Figures are a matrix and its metrics, shared by period reports and
+// window reports.
+type Figures struct {
+	// Classes orders both axes of Matrix: rows actual, columns predicted.
+	Classes     []string  `json:"classes"`
+	Matrix      [][]int64 `json:"matrix"`
+	Predictions int64     `json:"predictions"`
+	Labeled     int64     `json:"labeled"`
+	// Confidence is the level of the Wilson intervals.
+	Confidence float64       `json:"confidence"`
+	Metrics    MetricFigures `json:"metrics"`
+}
+
+// MetricFigures are the overall metrics; nil means undefined (null in JSON).
+type MetricFigures struct {
+	Accuracy         *float64 `json:"accuracy"`
+	BalancedAccuracy *float64 `json:"balanced_accuracy"`
+	MacroF1          *float64 `json:"macro_f1"`
+	LabelCoverage    *float64 `json:"label_coverage"`
+	// MCC is the multi-class Matthews correlation (Gorodkin's R_K).
+	MCC *float64 `json:"mcc"`
+	// Kappa is Cohen's kappa.
+	Kappa    *float64                `json:"kappa"`
+	PerClass map[string]ClassFigures `json:"per_class"`
+}
+
+// ClassFigures are one class's figures; nil means undefined.
+type ClassFigures struct {
+	Support int64 `json:"support"`
+	// Predictions counts the predictions of the class, labeled or not.
+	Predictions         int64       `json:"predictions"`
+	Recall              *float64    `json:"recall"`
+	Precision           *float64    `json:"precision"`
+	Specificity         *float64    `json:"specificity"`
+	F1                  *float64    `json:"f1"`
+	Prevalence          *float64    `json:"prevalence"`
+	PredictedShare      *float64    `json:"predicted_share"`
+	RecallInterval      *[2]float64 `json:"recall_interval"`
+	PrecisionInterval   *[2]float64 `json:"precision_interval"`
+	SpecificityInterval *[2]float64 `json:"specificity_interval"`
+}
+
+// MatrixReport reads and computes the figures of q from st. now is the
+// read time, reported as as_of when q has none. It returns a *RequestError
+// for a query at fault and wraps store.ErrUnknownModel for a model the
+// store does not know.
+func MatrixReport(ctx context.Context, st store.Store, q MatrixQuery, now time.Time, confidence float64) (Report, error) {
+	infos, err := st.Models(ctx)
+	if err != nil {
+		return Report{}, fmt.Errorf("list models: %w", err)
+	}
+	i := slices.IndexFunc(infos, func(m store.ModelInfo) bool { return m.Name == q.Model })
+	if i < 0 {
+		return Report{}, fmt.Errorf("model %q: %w", q.Model, store.ErrUnknownModel)
+	}
+	if err := q.validate(); err != nil {
+		return Report{}, err
+	}
+	sq := store.Query{Model: q.Model, From: q.From, To: q.To, Segment: q.Segment}
+	var counts store.Counts
+	asOf := now.UTC()
+	if q.AsOf != nil {
+		asOf = q.AsOf.UTC()
+		counts, err = st.CountsAsOf(ctx, sq, asOf)
+	} else {
+		counts, err = st.Counts(ctx, sq)
+	}
+	if err != nil {
+		return Report{}, fmt.Errorf("read counts: %w", err)
+	}
+	// A class registered after the model list was read may appear in the
+	// counts: append it rather than fail.
+	classes := slices.Clone(infos[i].Classes)
+	for _, c := range counts.Cells {
+		classes = appendNew(classes, c.Actual, c.Predicted)
+	}
+	for _, p := range counts.Predicted {
+		classes = appendNew(classes, p.Predicted)
+	}
+	m, pred, err := windows.FromCounts(classes, counts)
+	if err != nil {
+		return Report{}, fmt.Errorf("sum counts: %w", err)
+	}
+	return Report{
+		Model:   q.Model,
+		From:    q.From.UTC(),
+		To:      q.To.UTC(),
+		AsOf:    asOf,
+		Segment: q.Segment,
+		Figures: NewFigures(m, pred, confidence),
+	}, nil
+}
+
+func appendNew(classes []string, names ...string) []string {
+	for _, n := range names {
+		if !slices.Contains(classes, n) {
+			classes = append(classes, n)
+		}
+	}
+	return classes
+}
+
+func (q MatrixQuery) validate() error {
+	if q.Bucket <= 0 {
+		return fmt.Errorf("matrix query for %s: bucket must be positive", q.Model)
+	}
+	bucket := windows.FormatDuration(q.Bucket)
+	for _, b := range []struct {
+		name string
+		t    time.Time
+	}{{"from", q.From}, {"to", q.To}} {
+		if start := windows.BucketStart(b.t, q.Bucket); !start.Equal(b.t) {
+			return badRequest("%s %s is not aligned to the %s buckets of model %s: use %s or %s",
+				b.name, b.t.UTC().Format(time.RFC3339Nano), bucket, q.Model,
+				start.Format(time.RFC3339), start.Add(q.Bucket).Format(time.RFC3339))
+		}
+	}
+	if !q.To.After(q.From) {
+		return badRequest("to %s must be after from %s", q.To.UTC().Format(time.RFC3339), q.From.UTC().Format(time.RFC3339))
+	}
+	return nil
+}
+
+// NewFigures computes the figures of matrix m with predicted-class counts
+// pred (labeled or not) at the given confidence.
+func NewFigures(m *windows.Matrix, pred []int64, confidence float64) Figures {
+	mt := windows.Compute(m, pred, confidence)
+	f := Figures{
+		Classes:     slices.Clone(m.Classes()),
+		Matrix:      m.Dense(),
+		Predictions: mt.Predictions,
+		Labeled:     mt.Labeled,
+		Confidence:  confidence,
+		Metrics: MetricFigures{
+			Accuracy:         mt.Accuracy,
+			BalancedAccuracy: mt.BalancedAccuracy,
+			MacroF1:          mt.MacroF1,
+			LabelCoverage:    mt.LabelCoverage,
+			MCC:              mt.MCC,
+			Kappa:            mt.Kappa,
+			PerClass:         make(map[string]ClassFigures, len(mt.PerClass)),
+		},
+	}
+	for _, cm := range mt.PerClass {
+		f.Metrics.PerClass[cm.Class] = ClassFigures{
+			Support:             cm.Support,
+			Predictions:         cm.PredictedCount,
+			Recall:              cm.Recall,
+			Precision:           cm.Precision,
+			Specificity:         cm.Specificity,
+			F1:                  cm.F1,
+			Prevalence:          cm.Prevalence,
+			PredictedShare:      cm.PredictedShare,
+			RecallInterval:      pair(cm.RecallInterval),
+			PrecisionInterval:   pair(cm.PrecisionInterval),
+			SpecificityInterval: pair(cm.SpecificityInterval),
+		}
+	}
+	return f
+}
+
+func pair(iv *windows.Interval) *[2]float64 {
+	if iv == nil {
+		return nil
+	}
+	return &[2]float64{iv.Lo, iv.Hi}
+}
+
+// Report formats accepted by WriteReport.
+const (
+	FormatTable = "table"
+	FormatJSON  = "json"
+	FormatCSV   = "csv"
+)
+
+// WriteReport writes rep to w as "table" (aligned text for a terminal),
+// "json" (the HTTP API's body, indented) or "csv" (one figure per row).
+func WriteReport(w io.Writer, rep Report, format string) error {
+	switch format {
+	case FormatTable:
+		return writeTable(w, rep)
+	case FormatJSON:
+		enc := json.NewEncoder(w)
+		enc.SetIndent("", "  ")
+		if err := enc.Encode(rep); err != nil {
+			return fmt.Errorf("write report: %w", err)
+		}
+		return nil
+	case FormatCSV:
+		return writeCSV(w, rep)
+	}
+	return fmt.Errorf("unknown report format %q: want table, json or csv", format)
+}
+
+// num prints an optional figure with 4 decimals, "-" when undefined.
+func num(v *float64) string {
+	if v == nil {
+		return "-"
+	}
+	return strconv.FormatFloat(*v, 'f', 4, 64)
+}
+
+func interval(iv *[2]float64) string {
+	if iv == nil {
+		return "-"
+	}
+	return fmt.Sprintf("[%.4f, %.4f]", iv[0], iv[1])
+}
+
+func writeTable(w io.Writer, rep Report) error {
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	segment := "all"
+	if rep.Segment != nil {
+		segment = strconv.Quote(*rep.Segment)
+	}
+	mt := rep.Metrics
+	ci := fmt.Sprintf("%g%% CI", 100*rep.Confidence)
+	fmt.Fprintf(tw, "model\t%s\n", rep.Model)
+	fmt.Fprintf(tw, "period\t[%s, %s)\n", rep.From.Format(time.RFC3339), rep.To.Format(time.RFC3339))
+	fmt.Fprintf(tw, "labels as of\t%s\n", rep.AsOf.Format(time.RFC3339))
+	fmt.Fprintf(tw, "segment\t%s\n", segment)
+	fmt.Fprintf(tw, "predictions\t%d\n", rep.Predictions)
+	fmt.Fprintf(tw, "labeled\t%d\n", rep.Labeled)
+	fmt.Fprintf(tw, "label coverage\t%s\n", num(mt.LabelCoverage))
+	fmt.Fprintf(tw, "accuracy\t%s\n", num(mt.Accuracy))
+	fmt.Fprintf(tw, "balanced accuracy\t%s\n", num(mt.BalancedAccuracy))
+	fmt.Fprintf(tw, "macro F1\t%s\n", num(mt.MacroF1))
+	fmt.Fprintf(tw, "MCC\t%s\n", num(mt.MCC))
+	fmt.Fprintf(tw, "Cohen's kappa\t%s\n", num(mt.Kappa))
+	if err := tw.Flush(); err != nil {
+		return fmt.Errorf("write report: %w", err)
+	}
+
+	fmt.Fprintf(w, "\nconfusion matrix (rows actual, columns predicted)\n")
+	tw = tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintf(tw, "actual\\predicted\t%s\t\n", strings.Join(rep.Classes, "\t"))
+	for a, row := range rep.Matrix {
+		cells := make([]string, len(row))
+		for p, n := range row {
+			cells[p] = strconv.FormatInt(n, 10)
+		}
+		fmt.Fprintf(tw, "%s\t%s\t\n", rep.Classes[a], strings.Join(cells, "\t"))
+	}
+	if err := tw.Flush(); err != nil {
+		return fmt.Errorf("write report: %w", err)
+	}
+
+	fmt.Fprintf(w, "\nper class (%s: Wilson score interval)\n", ci)
+	tw = tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
+	fmt.Fprintf(tw, "class\tsupport\tpredictions\trecall\trecall %s\tprecision\tprecision %s\tspecificity\tF1\tprevalence\tpredicted share\n", ci, ci)
+	for _, c := range rep.Classes {
+		cf := mt.PerClass[c]
+		fmt.Fprintf(tw, "%s\t%d\t%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\n", c, cf.Support, cf.Predictions,
+			num(cf.Recall), interval(cf.RecallInterval), num(cf.Precision), interval(cf.PrecisionInterval),
+			num(cf.Specificity), num(cf.F1), num(cf.Prevalence), num(cf.PredictedShare))
+	}
+	if err := tw.Flush(); err != nil {
+		return fmt.Errorf("write report: %w", err)
+	}
+	return nil
+}
+
+// writeCSV writes one row per figure, every row repeating the period so
+// that reports can be concatenated. Undefined figures have an empty value.
+func writeCSV(w io.Writer, rep Report) error {
+	cw := csv.NewWriter(w)
+	segment := ""
+	if rep.Segment != nil {
+		segment = *rep.Segment
+	}
+	head := []string{rep.Model, rep.From.Format(time.RFC3339), rep.To.Format(time.RFC3339), rep.AsOf.Format(time.RFC3339Nano), segment}
+	rows := [][]string{{"model", "from", "to", "as_of", "segment", "kind", "class", "predicted", "metric", "value"}}
+	row := func(kind, class, predicted, metric, value string) {
+		rows = append(rows, append(slices.Clone(head), kind, class, predicted, metric, value))
+	}
+	opt := func(v *float64) string {
+		if v == nil {
+			return ""
+		}
+		return strconv.FormatFloat(*v, 'g', -1, 64)
+	}
+	count := func(n int64) string { return strconv.FormatInt(n, 10) }
+	mt := rep.Metrics
+	row("summary", "", "", "predictions", count(rep.Predictions))
+	row("summary", "", "", "labeled", count(rep.Labeled))
+	row("summary", "", "", "confidence", opt(&rep.Confidence))
+	for _, f := range []struct {
+		name string
+		v    *float64
+	}{
+		{"label_coverage", mt.LabelCoverage}, {"accuracy", mt.Accuracy}, {"balanced_accuracy", mt.BalancedAccuracy},
+		{"macro_f1", mt.MacroF1}, {"mcc", mt.MCC}, {"kappa", mt.Kappa},
+	} {
+		row("summary", "", "", f.name, opt(f.v))
+	}
+	for a, r := range rep.Matrix {
+		for p, n := range r {
+			row("matrix", rep.Classes[a], rep.Classes[p], "count", count(n))
+		}
+	}
+	lo := func(iv *[2]float64) *float64 {
+		if iv == nil {
+			return nil
+		}
+		return &iv[0]
+	}
+	hi := func(iv *[2]float64) *float64 {
+		if iv == nil {
+			return nil
+		}
+		return &iv[1]
+	}
+	for _, c := range rep.Classes {
+		cf := mt.PerClass[c]
+		row("class", c, "", "support", count(cf.Support))
+		row("class", c, "", "predictions", count(cf.Predictions))
+		for _, f := range []struct {
+			name string
+			v    *float64
+		}{
+			{"recall", cf.Recall}, {"recall_lower", lo(cf.RecallInterval)}, {"recall_upper", hi(cf.RecallInterval)},
+			{"precision", cf.Precision}, {"precision_lower", lo(cf.PrecisionInterval)}, {"precision_upper", hi(cf.PrecisionInterval)},
+			{"specificity", cf.Specificity}, {"specificity_lower", lo(cf.SpecificityInterval)}, {"specificity_upper", hi(cf.SpecificityInterval)},
+			{"f1", cf.F1}, {"prevalence", cf.Prevalence}, {"predicted_share", cf.PredictedShare},
+		} {
+			row("class", c, "", f.name, opt(f.v))
+		}
+	}
+	if err := cw.WriteAll(rows); err != nil {
+		return fmt.Errorf("write report: %w", err)
+	}
+	return nil
+}
+
+// isRequestError reports whether err is the caller's fault.
+func isRequestError(err error) bool {
+	var re *RequestError
+	return errors.As(err, &re)
+}

@@ -1,0 +1,292 @@
+package windows_test
+
+import (
+	"bytes"
+	"flag"
+	"fmt"
+	"math/rand/v2"
+	"net/http"
+	"net/http/httptest"
+	"os"
+	"os/exec"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"github.com/prometheus/client_golang/prometheus/testutil"
+	"github.com/prometheus/common/expfmt"
+
+	"github.com/classwatch/classwatch/windows"
+	"github.com/classwatch/classwatch/windows/store"
+)
+
+var updateMetrics = flag.Bool("update-metrics", false, "rewrite the golden exposition text in testdata/metrics")
+
+const scrapeGolden = "testdata/metrics/scrape.prom"
+
+// goldenTracker holds a small fixed scenario: a parcel-sorting line at a
+// fictional warehouse with a lagged window, a support desk router whose
+// predictions have no labels yet, and a configured model with no traffic.
+func goldenTracker(t testing.TB) *windows.Tracker {
+	t.Helper()
+	tr, err := windows.NewTracker(windows.TrackerOptions{
+		Models: []windows.ModelOptions{
+			{Name: "parcel-sorter", Windows: []windows.Window{
+				{Name: "1h", Length: time.Hour},
+				{Name: "2h-matured", Length: 2 * time.Hour, Lag: time.Hour},
+			}},
+			{Name: "line-7"},
+		},
+		DefaultBucket:  5 * time.Minute,
+		DefaultWindows: []windows.Window{{Name: "30m", Length: 30 * time.Minute}},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	tr.SetClasses("parcel-sorter", []string{"intact", "damaged", "mislabeled"})
+	tr.SetClasses("desk-router", []string{"billing", "outage"})
+	tr.SetClasses("line-7", []string{"ok", "dent"})
+
+	at := func(hhmm string) time.Time {
+		ts, err := time.Parse("2006-01-02 15:04", "2026-03-01 "+hhmm)
+		if err != nil {
+			t.Fatal(err)
+		}
+		return ts
+	}
+	var ch store.Changes
+	cell := func(model, bucket, actual, predicted string, n int64) {
+		ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: at(bucket), Actual: actual, Predicted: predicted, N: n})
+	}
+	pred := func(model, bucket, predicted string, n int64) {
+		ch.Predicted = append(ch.Predicted, store.PredictedDelta{Model: model, Bucket: at(bucket), Predicted: predicted, N: n})
+	}
+	// Watermark 14:00: window 1h is [13:00, 14:00), 2h-matured [11:00, 13:00).
+	cell("parcel-sorter", "11:30", "intact", "intact", 40)
+	cell("parcel-sorter", "11:30", "intact", "damaged", 3)
+	cell("parcel-sorter", "11:30", "damaged", "damaged", 5)
+	cell("parcel-sorter", "11:30", "damaged", "intact", 2)
+	cell("parcel-sorter", "11:30", "mislabeled", "mislabeled", 1)
+	pred("parcel-sorter", "11:30", "intact", 50)
+	pred("parcel-sorter", "11:30", "damaged", 9)
+	pred("parcel-sorter", "11:30", "mislabeled", 1)
+	cell("parcel-sorter", "12:10", "intact", "intact", 30)
+	cell("parcel-sorter", "12:10", "mislabeled", "intact", 2)
+	cell("parcel-sorter", "12:10", "damaged", "damaged", 4)
+	pred("parcel-sorter", "12:10", "intact", 35)
+	pred("parcel-sorter", "12:10", "damaged", 4)
+	cell("parcel-sorter", "13:05", "intact", "intact", 20)
+	cell("parcel-sorter", "13:05", "damaged", "intact", 1)
+	cell("parcel-sorter", "13:05", "damaged", "damaged", 2)
+	cell("parcel-sorter", "13:05", "intact", "mislabeled", 1)
+	pred("parcel-sorter", "13:05", "intact", 30)
+	pred("parcel-sorter", "13:05", "damaged", 3)
+	pred("parcel-sorter", "13:05", "mislabeled", 2)
+	cell("parcel-sorter", "13:40", "intact", "intact", 10)
+	pred("parcel-sorter", "13:40", "intact", 12)
+	// Predictions only, no label yet: counts defined, most ratios not.
+	pred("desk-router", "09:20", "billing", 4)
+	pred("desk-router", "09:20", "outage", 1)
+	tr.Apply(ch, map[string]time.Time{"parcel-sorter": at("13:58"), "desk-router": at("09:21")})
+	return tr
+}
+
+// newRegistry registers tr's collector on a pedantic registry, which also
+// checks every series against its descriptor.
+func newRegistry(t testing.TB, tr *windows.Tracker) *prometheus.Registry {
+	t.Helper()
+	reg := prometheus.NewPedanticRegistry()
+	if err := reg.Register(windows.NewCollector(tr, 0.95)); err != nil {
+		t.Fatal(err)
+	}
+	return reg
+}
+
+// exposition gathers reg and encodes it as Prometheus text.
+func exposition(t testing.TB, reg *prometheus.Registry) []byte {
+	t.Helper()
+	mfs, err := reg.Gather()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var buf bytes.Buffer
+	enc := expfmt.NewEncoder(&buf, expfmt.NewFormat(expfmt.TypeTextPlain))
+	for _, mf := range mfs {
+		if err := enc.Encode(mf); err != nil {
+			t.Fatal(err)
+		}
+	}
+	return buf.Bytes()
+}
+
+// TestCollectorGolden compares a scrape with testdata/metrics/scrape.prom.
+// The golden file's counts follow from the scenario above; its ratios and
+// intervals were checked independently against scikit-learn and
+// statsmodels by TestCollectorGoldenAgainstReference.
+func TestCollectorGolden(t *testing.T) {
+	reg := newRegistry(t, goldenTracker(t))
+	if *updateMetrics {
+		if err := os.WriteFile(scrapeGolden, exposition(t, reg), 0o644); err != nil {
+			t.Fatal(err)
+		}
+	}
+	f, err := os.Open(scrapeGolden)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	if err := testutil.GatherAndCompare(reg, f); err != nil {
+		t.Error(err)
+	}
+}
+
+// TestCollectorGoldenAgainstReference recomputes every ratio of the golden
+// file from its counts with scikit-learn 1.2 (precision_recall_fscore_support,
+// balanced_accuracy_score, f1_score, multilabel_confusion_matrix) and
+// statsmodels 0.13 (proportion_confint, method="wilson"), Debian bookworm's
+// python3-sklearn and python3-statsmodels, and checks that exactly the
+// defined ratios are present.
+func TestCollectorGoldenAgainstReference(t *testing.T) {
+	python := "/usr/bin/python3"
+	probe := exec.Command(python, "-c", "import sklearn, statsmodels")
+	if err := probe.Run(); err != nil {
+		if os.Getenv("CI") == "true" {
+			t.Fatalf("python3 with scikit-learn and statsmodels is required in CI: %v", err)
+		}
+		t.Skipf("python3 with scikit-learn and statsmodels not available: %v", err)
+	}
+	out, err := exec.Command(python, "testdata/metrics/check.py", scrapeGolden).CombinedOutput()
+	if err != nil {
+		t.Fatalf("check.py: %v\n%s", err, out)
+	}
+	t.Logf("%s", out)
+}
+
+// TestCollectorPromtool lints a scrape with promtool check metrics.
+func TestCollectorPromtool(t *testing.T) {
+	promtool, err := exec.LookPath("promtool")
+	if err != nil {
+		if os.Getenv("CI") == "true" {
+			t.Fatal("promtool is required in CI")
+		}
+		t.Skip("promtool not installed")
+	}
+	cmd := exec.Command(promtool, "check", "metrics")
+	cmd.Stdin = bytes.NewReader(exposition(t, newRegistry(t, goldenTracker(t))))
+	out, err := cmd.CombinedOutput()
+	if err != nil || len(bytes.TrimSpace(out)) > 0 {
+		t.Errorf("promtool check metrics: %v\n%s", err, out)
+	}
+}
+
+// TestCollectorNoStaleSeries checks that figures which stop being defined
+// disappear from the next scrape while the counts stay, zeros included.
+func TestCollectorNoStaleSeries(t *testing.T) {
+	tr, err := windows.NewTracker(windows.TrackerOptions{
+		DefaultWindows: []windows.Window{{Name: "1h", Length: time.Hour}},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	tr.SetClasses("line-7", []string{"ok", "dent"})
+	tr.Apply(store.Changes{
+		Cells:     []store.CellDelta{{Model: "line-7", Bucket: t0, Actual: "dent", Predicted: "dent", N: 3}},
+		Predicted: []store.PredictedDelta{{Model: "line-7", Bucket: t0, Predicted: "dent", N: 3}},
+	}, map[string]time.Time{"line-7": t0})
+	reg := newRegistry(t, tr)
+
+	series := func(name string) int {
+		t.Helper()
+		n, err := testutil.GatherAndCount(reg, name)
+		if err != nil {
+			t.Fatal(err)
+		}
+		return n
+	}
+	// Only dent has support and predictions.
+	if got, want := series("classwatch_recall_ratio"), 1; got != want {
+		t.Errorf("recall series before = %d, want %d", got, want)
+	}
+	if got, want := series("classwatch_precision_ratio"), 1; got != want {
+		t.Errorf("precision series before = %d, want %d", got, want)
+	}
+	// Two hours later the dent bucket has left the window.
+	tr.Apply(store.Changes{}, map[string]time.Time{"line-7": t0.Add(2 * time.Hour)})
+	for _, name := range []string{"classwatch_recall_ratio", "classwatch_recall_lower_ratio", "classwatch_precision_ratio", "classwatch_accuracy_ratio", "classwatch_label_coverage_ratio"} {
+		if got := series(name); got != 0 {
+			t.Errorf("%s: %d stale series after the window emptied", name, got)
+		}
+	}
+	if got, want := series("classwatch_confusion"), 4; got != want {
+		t.Errorf("confusion series = %d, want %d (every cell, zeros included)", got, want)
+	}
+	const want = `
+# HELP classwatch_window_labeled Predictions made in the window that have a label.
+# TYPE classwatch_window_labeled gauge
+classwatch_window_labeled{model="line-7",window="1h"} 0
+`
+	if err := testutil.GatherAndCompare(reg, strings.NewReader(want), "classwatch_window_labeled"); err != nil {
+		t.Error(err)
+	}
+}
+
+// BenchmarkScrape measures one scrape of 50 models × 12 classes × 4
+// windows: Gather alone, and the whole /metrics response as text.
+func BenchmarkScrape(b *testing.B) {
+	tr, err := windows.NewTracker(windows.TrackerOptions{
+		DefaultWindows: []windows.Window{
+			{Name: "1h", Length: time.Hour},
+			{Name: "6h", Length: 6 * time.Hour},
+			{Name: "1d", Length: 24 * time.Hour},
+			{Name: "2d-matured", Length: 48 * time.Hour, Lag: 24 * time.Hour},
+		},
+	})
+	if err != nil {
+		b.Fatal(err)
+	}
+	rng := rand.New(rand.NewPCG(1, 2))
+	classes := make([]string, 12)
+	for i := range classes {
+		classes[i] = fmt.Sprintf("class-%02d", i)
+	}
+	for m := range 50 {
+		model := fmt.Sprintf("model-%02d", m)
+		tr.SetClasses(model, classes)
+		var ch store.Changes
+		for k := range 72 * 12 { // three days of 5m buckets
+			bucket := t0.Add(time.Duration(k) * 5 * time.Minute)
+			for range 20 {
+				a, p := classes[rng.IntN(12)], classes[rng.IntN(12)]
+				ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: bucket, Actual: a, Predicted: p, N: 1})
+				ch.Predicted = append(ch.Predicted, store.PredictedDelta{Model: model, Bucket: bucket, Predicted: p, N: 2})
+			}
+		}
+		tr.Apply(ch, map[string]time.Time{model: t0.Add(72 * time.Hour)})
+	}
+	reg := prometheus.NewRegistry()
+	if err := reg.Register(windows.NewCollector(tr, 0.95)); err != nil {
+		b.Fatal(err)
+	}
+	b.Run("gather", func(b *testing.B) {
+		for b.Loop() {
+			if _, err := reg.Gather(); err != nil {
+				b.Fatal(err)
+			}
+		}
+		b.ReportMetric(b.Elapsed().Seconds()*1e3/float64(b.N), "ms/op")
+	})
+	b.Run("http", func(b *testing.B) {
+		h := promhttp.HandlerFor(reg, promhttp.HandlerOpts{ErrorHandling: promhttp.HTTPErrorOnError})
+		req := httptest.NewRequest(http.MethodGet, "/metrics", nil)
+		for b.Loop() {
+			rec := httptest.NewRecorder()
+			h.ServeHTTP(rec, req)
+			if rec.Code != http.StatusOK {
+				b.Fatal(rec.Code)
+			}
+		}
+		b.ReportMetric(b.Elapsed().Seconds()*1e3/float64(b.N), "ms/op")
+	})
+}

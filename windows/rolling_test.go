@@ -1,0 +1,573 @@
+package windows_test
+
+import (
+	"context"
+	"fmt"
+	"math/rand/v2"
+	"path/filepath"
+	"slices"
+	"sync"
+	"testing"
+	"time"
+
+	"github.com/classwatch/classwatch/windows"
+	"github.com/classwatch/classwatch/windows/store"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+)
+
+// t0 is an arbitrary bucket-aligned start for the scenarios below.
+var t0 = time.Date(2026, 3, 1, 12, 0, 0, 0, time.UTC)
+
+// oracle remembers every delta ever applied and sums them over a window's
+// bounds from scratch: the brute force the tracker's running sums must
+// match.
+type oracle struct {
+	cells []store.CellDelta
+	pred  []store.PredictedDelta
+}
+
+func (o *oracle) add(ch store.Changes) {
+	o.cells = append(o.cells, ch.Cells...)
+	o.pred = append(o.pred, ch.Predicted...)
+}
+
+// check compares v with the oracle's sums over [from, to), which the
+// caller derives from the watermark it expects.
+func (o *oracle) check(t *testing.T, v windows.View, from, to time.Time) {
+	t.Helper()
+	if !v.From.Equal(from) || !v.To.Equal(to) {
+		t.Fatalf("%s/%s: bounds [%s, %s), want [%s, %s)", v.Model, v.Window.Name, v.From, v.To, from, to)
+	}
+	in := func(model string, b time.Time) bool {
+		return model == v.Model && !b.Before(from) && b.Before(to)
+	}
+	want := make(map[[2]string]int64)
+	for _, d := range o.cells {
+		if in(d.Model, d.Bucket) {
+			want[[2]string{d.Actual, d.Predicted}] += d.N
+		}
+	}
+	wantPred := make(map[string]int64)
+	for _, d := range o.pred {
+		if in(d.Model, d.Bucket) {
+			wantPred[d.Predicted] += d.N
+		}
+	}
+	classes := v.Matrix.Classes()
+	for a, actual := range classes {
+		for p, predicted := range classes {
+			if got, want := v.Matrix.At(a, p), want[[2]string{actual, predicted}]; got != want {
+				t.Fatalf("%s/%s cell (%s, %s) = %d, want %d", v.Model, v.Window.Name, actual, predicted, got, want)
+			}
+			delete(want, [2]string{actual, predicted})
+		}
+		if got, want := v.Predicted[a], wantPred[actual]; got != want {
+			t.Fatalf("%s/%s predicted %s = %d, want %d", v.Model, v.Window.Name, actual, got, want)
+		}
+		delete(wantPred, actual)
+	}
+	for k, n := range want {
+		if n != 0 {
+			t.Fatalf("%s/%s: cell %v = %d missing from the view's classes %v", v.Model, v.Window.Name, k, n, classes)
+		}
+	}
+	for k, n := range wantPred {
+		if n != 0 {
+			t.Fatalf("%s/%s: predicted %s = %d missing from the view's classes %v", v.Model, v.Window.Name, k, n, classes)
+		}
+	}
+}
+
+// TestTrackerMatchesBruteForce applies random change sequences (late and
+// out-of-range buckets, negative corrections, new classes, watermark jumps
+// of every size) and checks after each one that every window equals the
+// brute-force sum of all deltas over the window's bounds.
+func TestTrackerMatchesBruteForce(t *testing.T) {
+	defaults := []windows.Window{
+		{Name: "15m", Length: 15 * time.Minute},
+		{Name: "1h", Length: time.Hour},
+		{Name: "30m-lag20m", Length: 30 * time.Minute, Lag: 20 * time.Minute},
+	}
+	sorterWindows := []windows.Window{
+		{Name: "2h-lag1h", Length: 2 * time.Hour, Lag: time.Hour},
+		{Name: "20m", Length: 20 * time.Minute},
+	}
+	buckets := map[string]time.Duration{"desk-router": 5 * time.Minute, "parcel-sorter": 10 * time.Minute}
+	for seed := uint64(1); seed <= 25; seed++ {
+		t.Run(fmt.Sprint("seed", seed), func(t *testing.T) {
+			rng := rand.New(rand.NewPCG(seed, 99))
+			tr, err := windows.NewTracker(windows.TrackerOptions{
+				Models:         []windows.ModelOptions{{Name: "parcel-sorter", Bucket: 10 * time.Minute, Windows: sorterWindows}},
+				DefaultBucket:  5 * time.Minute,
+				DefaultWindows: defaults,
+			})
+			if err != nil {
+				t.Fatal(err)
+			}
+			classes := map[string][]string{"desk-router": {"billing", "outage"}, "parcel-sorter": {"intact", "damaged"}}
+			for m, cs := range classes {
+				tr.SetClasses(m, cs)
+			}
+			latest := map[string]time.Time{}
+			var o oracle
+			for step := 0; step < 150; step++ {
+				var ch store.Changes
+				moved := map[string]time.Time{}
+				for _, model := range []string{"desk-router", "parcel-sorter"} {
+					bucket := buckets[model]
+					if rng.IntN(15) == 0 {
+						classes[model] = append(classes[model], fmt.Sprintf("class%d", len(classes[model])))
+						tr.SetClasses(model, classes[model])
+					}
+					cs := classes[model]
+					base := latest[model]
+					if base.IsZero() {
+						base = t0
+					}
+					for range rng.IntN(6) {
+						// Buckets from 5h before to 1h after the latest
+						// prediction: some long gone, some not yet reached.
+						b := windows.BucketStart(base, bucket).Add(time.Duration(rng.IntN(37)-30) * bucket)
+						ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: b,
+							Actual: cs[rng.IntN(len(cs))], Predicted: cs[rng.IntN(len(cs))], N: int64(rng.IntN(9) - 3)})
+						ch.Predicted = append(ch.Predicted, store.PredictedDelta{Model: model, Bucket: b,
+							Predicted: cs[rng.IntN(len(cs))], N: int64(rng.IntN(5))})
+					}
+					switch r := rng.IntN(10); {
+					case r < 5:
+						moved[model] = base.Add(time.Duration(rng.IntN(int(40 * time.Minute))))
+					case r == 5:
+						moved[model] = base.Add(time.Duration(rng.IntN(int(8 * time.Hour))))
+					case r == 6:
+						moved[model] = base.Add(-time.Hour) // an older prediction: no move
+					}
+				}
+				o.add(ch)
+				tr.Apply(ch, moved)
+				for m, at := range moved {
+					if at.After(latest[m]) {
+						latest[m] = at
+					}
+				}
+				for _, model := range []string{"desk-router", "parcel-sorter"} {
+					if latest[model].IsZero() {
+						continue
+					}
+					wm := windows.Watermark(latest[model], buckets[model])
+					for _, v := range tr.Views(model) {
+						if !slices.Equal(v.Matrix.Classes(), classes[model]) {
+							t.Fatalf("%s classes %v, want %v", model, v.Matrix.Classes(), classes[model])
+						}
+						from, to := v.Window.Bounds(wm)
+						o.check(t, v, from, to)
+					}
+				}
+			}
+		})
+	}
+}
+
+func TestTrackerLagWindow(t *testing.T) {
+	tr, err := windows.NewTracker(windows.TrackerOptions{
+		DefaultBucket:  5 * time.Minute,
+		DefaultWindows: []windows.Window{{Name: "matured", Length: 30 * time.Minute, Lag: 15 * time.Minute}},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	tr.SetClasses("claims", []string{"pay", "review"})
+	cell := func(at time.Time, n int64) store.Changes {
+		return store.Changes{Cells: []store.CellDelta{{Model: "claims", Bucket: at, Actual: "review", Predicted: "review", N: n}}}
+	}
+	// Latest prediction 12:57 → watermark 13:00 → window [12:15, 12:45).
+	tr.Apply(cell(t0.Add(10*time.Minute), 1), map[string]time.Time{"claims": t0.Add(57 * time.Minute)}) // 12:10: before the window
+	tr.Apply(cell(t0.Add(15*time.Minute), 2), nil)                                                      // 12:15: first bucket
+	tr.Apply(cell(t0.Add(40*time.Minute), 4), nil)                                                      // 12:40: last bucket
+	tr.Apply(cell(t0.Add(45*time.Minute), 8), nil)                                                      // 12:45: inside the lag
+	v, ok := tr.View("claims", "matured")
+	if !ok {
+		t.Fatal("window matured missing")
+	}
+	if got, want := v.From, t0.Add(15*time.Minute); !got.Equal(want) {
+		t.Errorf("from = %s, want %s", got, want)
+	}
+	if got, want := v.To, t0.Add(45*time.Minute); !got.Equal(want) {
+		t.Errorf("to = %s, want %s", got, want)
+	}
+	if got, want := v.Matrix.At(1, 1), int64(2+4); got != want {
+		t.Errorf("before the move: review/review = %d, want %d", got, want)
+	}
+	// Latest 13:10 → watermark 13:15 → [12:30, 13:00): 12:15 leaves, 12:45 enters.
+	tr.Apply(store.Changes{}, map[string]time.Time{"claims": t0.Add(70 * time.Minute)})
+	v, _ = tr.View("claims", "matured")
+	if got, want := v.Matrix.At(1, 1), int64(4+8); got != want {
+		t.Errorf("after the move: review/review = %d, want %d", got, want)
+	}
+	// A correction in the long-gone 12:10 bucket is ignored.
+	tr.Apply(cell(t0.Add(10*time.Minute), -1), nil)
+	v, _ = tr.View("claims", "matured")
+	if got, want := v.Matrix.At(1, 1), int64(4+8); got != want {
+		t.Errorf("after an out-of-range correction: review/review = %d, want %d", got, want)
+	}
+}
+
+func TestTrackerWallClock(t *testing.T) {
+	now := t0.Add(62 * time.Minute) // 13:02 → watermark 13:05
+	tr, err := windows.NewTracker(windows.TrackerOptions{
+		DefaultBucket:  5 * time.Minute,
+		DefaultWindows: []windows.Window{{Name: "1h", Length: time.Hour}},
+		Clock:          windows.ClockWall,
+		Now:            func() time.Time { return now },
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	tr.SetClasses("tickets", []string{"billing", "outage"})
+	// The latest prediction time does not move a wall-clock watermark.
+	tr.Apply(store.Changes{
+		Cells:     []store.CellDelta{{Model: "tickets", Bucket: t0.Add(5 * time.Minute), Actual: "outage", Predicted: "billing", N: 3}},
+		Predicted: []store.PredictedDelta{{Model: "tickets", Bucket: t0.Add(5 * time.Minute), Predicted: "billing", N: 5}},
+	}, map[string]time.Time{"tickets": t0.Add(5 * time.Hour)})
+	v, _ := tr.View("tickets", "1h")
+	if got, want := v.Watermark, t0.Add(65*time.Minute); !got.Equal(want) {
+		t.Fatalf("watermark = %s, want %s", got, want)
+	}
+	if got, want := v.Matrix.At(1, 0), int64(3); got != want {
+		t.Errorf("outage/billing = %d, want %d", got, want)
+	}
+	if got, want := v.Predicted[0], int64(5); got != want {
+		t.Errorf("predicted billing = %d, want %d", got, want)
+	}
+	// Time passes without traffic: the 12:05 bucket leaves [12:10, 13:10).
+	now = t0.Add(66 * time.Minute)
+	v, _ = tr.View("tickets", "1h")
+	if got, want := v.From, t0.Add(10*time.Minute); !got.Equal(want) {
+		t.Errorf("from = %s, want %s", got, want)
+	}
+	if got, want := v.Matrix.Total(), int64(0); got != want {
+		t.Errorf("total after the bucket left = %d, want %d", got, want)
+	}
+	if got, want := v.Predicted[0], int64(0); got != want {
+		t.Errorf("predicted billing after the bucket left = %d, want %d", got, want)
+	}
+}
+
+func TestTrackerGrowingClasses(t *testing.T) {
+	tr, err := windows.NewTracker(windows.TrackerOptions{
+		DefaultWindows: []windows.Window{{Name: "1h", Length: time.Hour}},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	tr.SetClasses("line-7", []string{"ok", "dent"})
+	at := map[string]time.Time{"line-7": t0}
+	tr.Apply(store.Changes{Cells: []store.CellDelta{{Model: "line-7", Bucket: t0, Actual: "dent", Predicted: "ok", N: 2}}}, at)
+	tr.SetClasses("line-7", []string{"ok", "dent", "scratch"})
+	tr.Apply(store.Changes{Cells: []store.CellDelta{{Model: "line-7", Bucket: t0, Actual: "scratch", Predicted: "dent", N: 1}}}, nil)
+	// A class the tracker was not told about is appended on sight.
+	tr.Apply(store.Changes{Predicted: []store.PredictedDelta{{Model: "line-7", Bucket: t0, Predicted: "crack", N: 4}}}, nil)
+	v, _ := tr.View("line-7", "1h")
+	if got, want := v.Matrix.Classes(), []string{"ok", "dent", "scratch", "crack"}; !slices.Equal(got, want) {
+		t.Fatalf("classes = %v, want %v", got, want)
+	}
+	want := [][]int64{{0, 0, 0, 0}, {2, 0, 0, 0}, {0, 1, 0, 0}, {0, 0, 0, 0}}
+	for a, row := range want {
+		for p, n := range row {
+			if got := v.Matrix.At(a, p); got != n {
+				t.Errorf("cell (%d, %d) = %d, want %d", a, p, got, n)
+			}
+		}
+	}
+	if got, want := v.Predicted, []int64{0, 0, 0, 4}; !slices.Equal(got, want) {
+		t.Errorf("predicted = %v, want %v", got, want)
+	}
+}
+
+func TestNewTrackerRejectsBadOptions(t *testing.T) {
+	for name, opts := range map[string]windows.TrackerOptions{
+		"unaligned window": {DefaultWindows: []windows.Window{{Name: "x", Length: 7 * time.Minute}}},
+		"repeated window":  {DefaultWindows: []windows.Window{{Name: "x", Length: time.Hour}, {Name: "x", Length: 2 * time.Hour}}},
+		"unknown clock":    {Clock: "lunar"},
+		"model twice":      {Models: []windows.ModelOptions{{Name: "a"}, {Name: "a"}}},
+		"unnamed model":    {Models: []windows.ModelOptions{{Bucket: time.Minute}}},
+	} {
+		if _, err := windows.NewTracker(opts); err == nil {
+			t.Errorf("%s: no error", name)
+		}
+	}
+}
+
+// openStore opens a migrated SQLite store in a fresh file.
+func openStore(tb testing.TB) *sqlitestore.Store {
+	tb.Helper()
+	ctx := context.Background()
+	s, err := sqlitestore.Open(ctx, filepath.Join(tb.TempDir(), "classwatch.db"), sqlitestore.Options{})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	tb.Cleanup(func() { s.Close() })
+	if err := s.Migrate(ctx); err != nil {
+		tb.Fatal(err)
+	}
+	return s
+}
+
+// traffic writes random batches of predictions and labels (late labels,
+// early labels, corrections, duplicates) for a fictional parcel-sorting
+// line through the store, and hands each committed result to apply.
+type traffic struct {
+	s      store.Store
+	rng    *rand.Rand
+	model  string
+	prefix string // of prediction ids
+	bucket time.Duration
+	at     time.Time
+	next   int
+}
+
+var sorterClasses = []string{"intact", "damaged", "mislabeled"}
+
+func (tf *traffic) batch(tb testing.TB, apply func(store.Changes, map[string]time.Time)) {
+	tb.Helper()
+	ctx := context.Background()
+	var preds []store.Prediction
+	for range 1 + tf.rng.IntN(20) {
+		tf.at = tf.at.Add(time.Duration(tf.rng.IntN(int(3 * time.Minute))))
+		preds = append(preds, store.Prediction{
+			Model: tf.model, ID: fmt.Sprintf("%s%d", tf.prefix, tf.next), At: tf.at,
+			Bucket: windows.BucketStart(tf.at, tf.bucket), Predicted: sorterClasses[tf.rng.IntN(3)],
+		})
+		tf.next++
+	}
+	var labels []store.Label
+	for range tf.rng.IntN(25) {
+		// Mostly earlier parcels, sometimes one not yet predicted (early).
+		id := tf.rng.IntN(tf.next + 5)
+		labels = append(labels, store.Label{Model: tf.model, ID: fmt.Sprintf("%s%d", tf.prefix, id),
+			Actual: sorterClasses[tf.rng.IntN(3)], At: tf.at.Add(time.Duration(tf.rng.IntN(1000)) * time.Second)})
+	}
+	pr, err := tf.s.IngestPredictions(ctx, preds, tf.at)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	apply(pr.Changes, map[string]time.Time{tf.model: tf.at})
+	lr, err := tf.s.IngestLabels(ctx, labels, tf.at)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	apply(lr.Changes, nil)
+}
+
+func newTraffic(tb testing.TB, s store.Store, seed uint64) *traffic {
+	tb.Helper()
+	if _, err := s.EnsureModel(context.Background(), "parcel-sorter", sorterClasses, 0); err != nil {
+		tb.Fatal(err)
+	}
+	return &traffic{s: s, rng: rand.New(rand.NewPCG(seed, 7)), model: "parcel-sorter", prefix: "parcel-", bucket: 5 * time.Minute, at: t0}
+}
+
+var sorterWindows = []windows.Window{
+	{Name: "1h", Length: time.Hour},
+	{Name: "3h", Length: 3 * time.Hour},
+	{Name: "2h-matured", Length: 2 * time.Hour, Lag: time.Hour},
+}
+
+func newSorterTracker(tb testing.TB, s store.Store) *windows.Tracker {
+	tb.Helper()
+	tr, err := windows.NewTracker(windows.TrackerOptions{
+		Store:          s,
+		DefaultBucket:  5 * time.Minute,
+		DefaultWindows: sorterWindows,
+	})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return tr
+}
+
+// checkAgainstStore compares every window of tr with the store's own sums
+// over the window's bounds.
+func checkAgainstStore(t *testing.T, s store.Store, tr *windows.Tracker, model string) {
+	t.Helper()
+	views := tr.Views(model)
+	if len(views) == 0 {
+		t.Fatalf("no windows for %s", model)
+	}
+	for _, v := range views {
+		c, err := s.Counts(context.Background(), store.Query{Model: model, From: v.From, To: v.To})
+		if err != nil {
+			t.Fatal(err)
+		}
+		m, pred, err := windows.FromCounts(v.Matrix.Classes(), c)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if got, want := v.Matrix.Dense(), m.Dense(); !slices.EqualFunc(got, want, slices.Equal) {
+			t.Errorf("%s: matrix %v, store says %v", v.Window.Name, got, want)
+		}
+		if got, want := v.Predicted, pred; !slices.Equal(got, want) {
+			t.Errorf("%s: predicted %v, store says %v", v.Window.Name, got, want)
+		}
+	}
+}
+
+func sameViews(t *testing.T, got, want *windows.Tracker, model string) {
+	t.Helper()
+	gv, wv := got.Views(model), want.Views(model)
+	if len(gv) != len(wv) {
+		t.Fatalf("%d views, want %d", len(gv), len(wv))
+	}
+	for i := range gv {
+		g, w := gv[i], wv[i]
+		if !g.Watermark.Equal(w.Watermark) || !g.From.Equal(w.From) || !g.To.Equal(w.To) {
+			t.Errorf("%s: watermark %s [%s, %s), want %s [%s, %s)", g.Window.Name, g.Watermark, g.From, g.To, w.Watermark, w.From, w.To)
+		}
+		if !slices.Equal(g.Matrix.Classes(), w.Matrix.Classes()) {
+			t.Errorf("%s: classes %v, want %v", g.Window.Name, g.Matrix.Classes(), w.Matrix.Classes())
+			continue
+		}
+		if !slices.EqualFunc(g.Matrix.Dense(), w.Matrix.Dense(), slices.Equal) || !slices.Equal(g.Predicted, w.Predicted) {
+			t.Errorf("%s: %v %v, want %v %v", g.Window.Name, g.Matrix.Dense(), g.Predicted, w.Matrix.Dense(), w.Predicted)
+		}
+	}
+}
+
+// TestTrackerLoadAndRefreshMatchApply drives a real store, keeping one
+// tracker current through Apply, and checks that a tracker loaded from the
+// store, and one refreshed after missing commits (another replica's view),
+// hold the same windows, which also equal the store's own sums.
+func TestTrackerLoadAndRefreshMatchApply(t *testing.T) {
+	ctx := context.Background()
+	s := openStore(t)
+	tf := newTraffic(t, s, 1)
+	live := newSorterTracker(t, s)
+	live.SetClasses("parcel-sorter", sorterClasses)
+	replica := newSorterTracker(t, s)
+	if err := replica.Load(ctx); err != nil {
+		t.Fatal(err)
+	}
+	for range 60 {
+		tf.batch(t, live.Apply)
+	}
+	checkAgainstStore(t, s, live, "parcel-sorter")
+
+	loaded := newSorterTracker(t, s)
+	if err := loaded.Load(ctx); err != nil {
+		t.Fatal(err)
+	}
+	sameViews(t, loaded, live, "parcel-sorter")
+
+	if err := replica.Refresh(ctx); err != nil {
+		t.Fatal(err)
+	}
+	sameViews(t, replica, live, "parcel-sorter")
+
+	// After more traffic, the loaded tracker follows through Apply alone.
+	for range 30 {
+		tf.batch(t, func(ch store.Changes, latest map[string]time.Time) {
+			live.Apply(ch, latest)
+			loaded.Apply(ch, latest)
+		})
+	}
+	sameViews(t, loaded, live, "parcel-sorter")
+	checkAgainstStore(t, s, loaded, "parcel-sorter")
+}
+
+// midReadStore is a real store whose Counts runs hook after reading, to
+// place commits between Refresh's read and its swap.
+type midReadStore struct {
+	store.Store
+	hook func()
+}
+
+func (m *midReadStore) Counts(ctx context.Context, q store.Query) (store.Counts, error) {
+	c, err := m.Store.Counts(ctx, q)
+	if m.hook != nil {
+		m.hook()
+	}
+	return c, err
+}
+
+// TestTrackerRefreshKeepsConcurrentCommits commits batches after Refresh
+// has read the store but before it swaps its state in: their Apply calls
+// must survive the swap.
+func TestTrackerRefreshKeepsConcurrentCommits(t *testing.T) {
+	ctx := context.Background()
+	s := openStore(t)
+	tf := newTraffic(t, s, 2)
+	wrapped := &midReadStore{Store: s}
+	tr := newSorterTracker(t, wrapped)
+	tr.SetClasses("parcel-sorter", sorterClasses)
+	for range 20 {
+		tf.batch(t, tr.Apply)
+	}
+	wrapped.hook = func() {
+		for range 3 {
+			tf.batch(t, tr.Apply)
+		}
+	}
+	if err := tr.Refresh(ctx); err != nil {
+		t.Fatal(err)
+	}
+	wrapped.hook = nil
+	checkAgainstStore(t, s, tr, "parcel-sorter")
+}
+
+// TestTrackerConcurrentUse runs ingest, Refresh and readers together (run
+// with -race); once quiet, a last Refresh must leave the store's figures.
+func TestTrackerConcurrentUse(t *testing.T) {
+	ctx := context.Background()
+	s := openStore(t)
+	tf := newTraffic(t, s, 3)
+	tr := newSorterTracker(t, s)
+	tr.SetClasses("parcel-sorter", sorterClasses)
+	var wg sync.WaitGroup
+	done := make(chan struct{})
+	wg.Add(2)
+	go func() {
+		defer wg.Done()
+		for {
+			select {
+			case <-done:
+				return
+			default:
+			}
+			if err := tr.Refresh(ctx); err != nil {
+				t.Error(err)
+				return
+			}
+		}
+	}()
+	go func() {
+		defer wg.Done()
+		for {
+			select {
+			case <-done:
+				return
+			default:
+			}
+			for _, v := range tr.Views("parcel-sorter") {
+				_ = v.Matrix.Total()
+			}
+		}
+	}()
+	for range 40 {
+		tf.batch(t, tr.Apply)
+	}
+	close(done)
+	wg.Wait()
+	if err := tr.Refresh(ctx); err != nil {
+		t.Fatal(err)
+	}
+	checkAgainstStore(t, s, tr, "parcel-sorter")
+}
+
+func TestTrackerWithoutStore(t *testing.T) {
+	tr, err := windows.NewTracker(windows.TrackerOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := tr.Load(context.Background()); err == nil {
+		t.Error("Load without a store: no error")
+	}
+}

@@ -1,0 +1,420 @@
+package pgstore
+
+import (
+	"context"
+	"slices"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+
+	"github.com/classwatch/classwatch/windows/store"
+)
+
+// versionRows collects new label versions, copied into label_versions in
+// one COPY. They are known to be new: label batches of a model hold its
+// label lock and have read the versions of the predictions they touch, and
+// early labels joining a new prediction are its first versions.
+type versionRows struct {
+	models  []int32
+	buckets []time.Time
+	pkeys   []int64
+	implied []bool
+	ats     []time.Time
+	actuals []string
+}
+
+func (v *versionRows) add(model int32, bucket time.Time, pkey int64, implied bool, at time.Time, actual string) {
+	v.models = append(v.models, model)
+	v.buckets = append(v.buckets, bucket)
+	v.pkeys = append(v.pkeys, pkey)
+	v.implied = append(v.implied, implied)
+	v.ats = append(v.ats, at)
+	v.actuals = append(v.actuals, actual)
+}
+
+// copy writes the versions.
+func (v *versionRows) copy(ctx context.Context, tx conn) error {
+	if len(v.models) == 0 {
+		return nil
+	}
+	row := make([]any, 6)
+	src := pgx.CopyFromSlice(len(v.models), func(i int) ([]any, error) {
+		row[0], row[1], row[2], row[3], row[4], row[5] = v.models[i], v.buckets[i], v.pkeys[i], v.implied[i], v.ats[i], v.actuals[i]
+		return row, nil
+	})
+	_, err := tx.CopyFrom(ctx, pgx.Identifier{"label_versions"}, []string{"model_id", "bucket", "pkey", "implied", "at", "actual"}, src)
+	return err
+}
+
+// version is one label version of a prediction.
+type version struct {
+	actual  string
+	at      time.Time
+	implied bool
+}
+
+// current returns the label of a prediction with versions vs: its real
+// version with the greatest (at, actual), else its implied version.
+func current(vs []version) (version, bool) {
+	var best, implied version
+	var haveBest, haveImplied bool
+	for _, v := range vs {
+		switch {
+		case v.implied:
+			implied, haveImplied = v, true
+		case !haveBest || later(v.at, v.actual, best.at, best.actual):
+			best, haveBest = v, true
+		}
+	}
+	if haveBest {
+		return best, true
+	}
+	return implied, haveImplied
+}
+
+// labelKey is a (model, id) pair.
+type labelKey struct {
+	model int32
+	id    string
+}
+
+// target is a known prediction a label batch touches, with its versions.
+type target struct {
+	pkey               int64
+	bucket             time.Time
+	segment, predicted string
+	versions           []version
+	before             version // current label before the batch
+	had                bool
+}
+
+// IngestLabels applies a batch of label versions in one transaction; see
+// store.Store.
+//
+// Labels live apart from predictions: a label line costs an index lookup of
+// its prediction in predictions, a lookup of the prediction's versions and
+// the insert of the new version into label_versions, whose day partition is
+// the prediction's. Nothing is updated in place. Label batches of one model
+// are serialized by an advisory lock taken first, so the versions read are
+// the ones the batch builds on; the outcome of each line is then decided in
+// memory, in line order, and the writes go as one set-based statement per
+// table.
+func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.Time) (store.LabelResult, error) {
+	res := store.LabelResult{Outcomes: make([]store.LabelOutcome, len(batch))}
+	if len(batch) == 0 {
+		return res, nil
+	}
+	names := make([]string, len(batch))
+	for i := range batch {
+		names[i] = batch[i].Model
+	}
+	ids, err := s.modelIDs(ctx, names)
+	if err != nil {
+		return res, err
+	}
+	var t *tally
+	err = s.retry(ctx, func() error {
+		t = newTally()
+		return s.inTx(ctx, func(c *pgx.Conn) error {
+			return s.applyLabels(ctx, c, batch, ids, micro(now), res.Outcomes, t)
+		})
+	})
+	if err != nil {
+		return res, unavailable("ingest labels", err)
+	}
+	res.Changes = t.changes(namesOf(ids))
+	return res, nil
+}
+
+// applyLabels is one attempt at the label transaction.
+func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Label, ids map[string]int32, now time.Time, out []store.LabelOutcome, t *tally) error {
+	var keys []labelKey
+	seen := map[labelKey]bool{}
+	for _, l := range batch {
+		k := labelKey{ids[l.Model], l.ID}
+		if !seen[k] {
+			seen[k] = true
+			keys = append(keys, k)
+		}
+	}
+	// The models' label locks, then the lookup, in one round trip.
+	var (
+		b       pgx.Batch
+		targets map[labelKey]*target
+	)
+	b.Queue(sqlBegin)
+	b.Queue(sqlLockModels, s.keys.label, sortedModels(ids))
+	queueFind(&b, keys, &targets)
+	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
+		return err
+	}
+	var (
+		unknown       []labelKey
+		unknownModels []int32
+	)
+	for _, k := range keys {
+		if targets[k] == nil {
+			unknown = append(unknown, k)
+			unknownModels = append(unknownModels, k.model)
+		}
+	}
+	if len(unknown) > 0 {
+		// Early labels: take the models' early-label locks exclusively,
+		// which waits for prediction batches in flight, then look again.
+		if _, err := tx.Exec(ctx, sqlLockModels, s.keys.early, distinctSorted(unknownModels)); err != nil {
+			return err
+		}
+		var (
+			b    pgx.Batch
+			late map[labelKey]*target
+		)
+		queueFind(&b, unknown, &late)
+		if err := tx.SendBatch(ctx, &b).Close(); err != nil {
+			return err
+		}
+		for k, tg := range late {
+			targets[k] = tg
+		}
+	}
+	if err := readVersions(ctx, tx, targets); err != nil {
+		return err
+	}
+
+	// Decide each line in order against the versions known so far.
+	var (
+		v     versionRows
+		early struct {
+			models       []int32
+			ids, actuals []string
+			ats          []time.Time
+			lines        [][]int // batch lines per early row
+		}
+		earlyRow = map[earlyKey]int{}
+	)
+	for i, l := range batch {
+		k := labelKey{ids[l.Model], l.ID}
+		at := micro(l.At)
+		tg := targets[k]
+		if tg == nil {
+			ek := earlyKey{k, at, l.Actual}
+			if j, ok := earlyRow[ek]; ok {
+				early.lines[j] = append(early.lines[j], i)
+				continue
+			}
+			earlyRow[ek] = len(early.models)
+			early.models = append(early.models, k.model)
+			early.ids = append(early.ids, k.id)
+			early.ats = append(early.ats, at)
+			early.actuals = append(early.actuals, l.Actual)
+			early.lines = append(early.lines, []int{i})
+			continue
+		}
+		nv := version{actual: l.Actual, at: at}
+		if slices.ContainsFunc(tg.versions, func(x version) bool { return !x.implied && x.actual == nv.actual && x.at.Equal(nv.at) }) {
+			out[i] = store.LabelDuplicate
+			continue
+		}
+		before, had := current(tg.versions)
+		tg.versions = append(tg.versions, nv)
+		v.add(k.model, tg.bucket, tg.pkey, false, at, l.Actual)
+		after, _ := current(tg.versions)
+		switch {
+		case !had:
+			out[i] = store.LabelMatched
+		case before.actual != after.actual:
+			out[i] = store.LabelCorrected
+		default:
+			out[i] = store.LabelDuplicate
+		}
+	}
+	for k, tg := range targets {
+		after, has := current(tg.versions)
+		if tg.had && (!has || after.actual != tg.before.actual) {
+			t.addCell(k.model, tg.bucket, tg.segment, tg.before.actual, tg.predicted, -1)
+		}
+		if has && (!tg.had || after.actual != tg.before.actual) {
+			t.addCell(k.model, tg.bucket, tg.segment, after.actual, tg.predicted, 1)
+		}
+	}
+
+	if err := v.copy(ctx, tx); err != nil {
+		return err
+	}
+	b = pgx.Batch{}
+	if len(early.models) > 0 {
+		// An early version already held is a duplicate; RETURNING names the
+		// new ones.
+		for _, lines := range early.lines {
+			for _, i := range lines {
+				out[i] = store.LabelDuplicate
+			}
+		}
+		b.Queue(sqlAddEarly, early.models, early.ids, early.ats, early.actuals, now).Query(func(rows pgx.Rows) error {
+			var ek earlyKey
+			_, err := pgx.ForEachRow(rows, []any{&ek.model, &ek.id, &ek.at, &ek.actual}, func() error {
+				out[early.lines[earlyRow[ek]][0]] = store.LabelEarly
+				return nil
+			})
+			return err
+		})
+	}
+	t.queue(&b)
+	b.Queue(sqlCommit)
+	return tx.SendBatch(ctx, &b).Close()
+}
+
+// earlyKey is one early label version.
+type earlyKey struct {
+	labelKey
+	at     time.Time
+	actual string
+}
+
+// queueFind queues the lookup of keys' predictions; out receives the
+// known ones.
+func queueFind(b *pgx.Batch, keys []labelKey, out *map[labelKey]*target) {
+	models := make([]int32, len(keys))
+	idList := make([]string, len(keys))
+	for i, k := range keys {
+		models[i], idList[i] = k.model, k.id
+	}
+	b.Queue(sqlFindPredictions, models, idList).Query(func(rows pgx.Rows) error {
+		found := make(map[labelKey]*target, len(keys))
+		var (
+			k  labelKey
+			tg target
+		)
+		_, err := pgx.ForEachRow(rows, []any{&k.model, &k.id, &tg.pkey, &tg.bucket, &tg.segment, &tg.predicted}, func() error {
+			v := tg
+			found[k] = &v
+			return nil
+		})
+		*out = found
+		return err
+	})
+}
+
+// readVersions loads the label versions of targets and their current label.
+func readVersions(ctx context.Context, tx conn, targets map[labelKey]*target) error {
+	if len(targets) == 0 {
+		return nil
+	}
+	type pk struct {
+		model int32
+		pkey  int64
+	}
+	var (
+		models   []int32
+		buckets  []time.Time
+		pkeys    []int64
+		min, max time.Time
+		byKey    = make(map[pk]*target, len(targets))
+	)
+	for k, tg := range targets {
+		models = append(models, k.model)
+		buckets = append(buckets, tg.bucket)
+		pkeys = append(pkeys, tg.pkey)
+		if min.IsZero() || tg.bucket.Before(min) {
+			min = tg.bucket
+		}
+		if tg.bucket.After(max) {
+			max = tg.bucket
+		}
+		byKey[pk{k.model, tg.pkey}] = tg
+	}
+	rows, err := tx.Query(ctx, sqlFindVersions, models, buckets, pkeys, min, max)
+	if err != nil {
+		return err
+	}
+	var (
+		k pk
+		v version
+	)
+	_, err = pgx.ForEachRow(rows, []any{&k.model, &k.pkey, &v.implied, &v.at, &v.actual}, func() error {
+		tg := byKey[k]
+		tg.versions = append(tg.versions, v)
+		return nil
+	})
+	if err != nil {
+		return err
+	}
+	for _, tg := range targets {
+		tg.before, tg.had = current(tg.versions)
+	}
+	return nil
+}
+
+// ApplyLabelTimeout gives due unlabeled predictions their implied version;
+// see store.Store. It finds the buckets that still hold unlabeled
+// predictions from the maintained counts (predicted count above labeled
+// count), so each run reads only those buckets' rows.
+func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, timeout time.Duration, now time.Time) (int64, store.Changes, error) {
+	id, err := s.modelID(ctx, model)
+	if err != nil {
+		return 0, store.Changes{}, err
+	}
+	due := micro(now.Add(-timeout))
+	var (
+		n int64
+		t *tally
+	)
+	err = s.retry(ctx, func() error {
+		n, t = 0, newTally()
+		return pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
+			if _, err := tx.Exec(ctx, sqlLockModels, s.keys.label, []int32{id}); err != nil {
+				return err
+			}
+			var purged *time.Time
+			if err := tx.QueryRow(ctx, sqlPurgedBefore, id).Scan(&purged); err != nil {
+				return err
+			}
+			rows, err := tx.Query(ctx, sqlIncompleteBuckets, id, due, purged)
+			if err != nil {
+				return err
+			}
+			buckets, err := pgx.CollectRows(rows, pgx.RowTo[time.Time])
+			if err != nil || len(buckets) == 0 {
+				return err
+			}
+			if _, err := tx.Exec(ctx, sqlSummarize); err != nil {
+				return err
+			}
+			rows, err = tx.Query(ctx, sqlApplyTimeout, id, buckets, buckets[0], buckets[len(buckets)-1], due, timeout, label)
+			if err != nil {
+				return err
+			}
+			var (
+				bucket             time.Time
+				segment, predicted string
+				count              int64
+			)
+			_, err = pgx.ForEachRow(rows, []any{&bucket, &segment, &predicted, &count}, func() error {
+				t.addCell(id, bucket, segment, label, predicted, count)
+				n += count
+				return nil
+			})
+			if err != nil {
+				return err
+			}
+			return t.write(ctx, tx)
+		})
+	})
+	if err != nil {
+		return 0, store.Changes{}, unavailable("apply label timeout", err)
+	}
+	return n, t.changes(map[int32]string{id: model}), nil
+}
+
+// ExpireEarlyLabels drops early labels received at or before now−ttl; see
+// store.Store.
+func (s *Store) ExpireEarlyLabels(ctx context.Context, model string, ttl time.Duration, now time.Time) (int64, error) {
+	id, err := s.modelID(ctx, model)
+	if err != nil {
+		return 0, err
+	}
+	tag, err := s.pool.Exec(ctx, sqlExpireEarly, id, micro(now.Add(-ttl)))
+	if err != nil {
+		return 0, unavailable("expire early labels", err)
+	}
+	return tag.RowsAffected(), nil
+}

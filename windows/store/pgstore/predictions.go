@@ -1,0 +1,410 @@
+package pgstore
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"maps"
+	"math"
+	"slices"
+	"strconv"
+	"time"
+	"unicode/utf8"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/pgconn"
+
+	"github.com/classwatch/classwatch/windows/store"
+)
+
+// keyBlock is how many prediction keys one nextval of
+// prediction_key_blocks reserves.
+const keyBlock = 1 << 16
+
+// predLine is a batch's first line for one (model, id).
+type predLine struct {
+	line   int // index in the batch
+	model  int32
+	id     string
+	at     time.Time
+	bucket time.Time
+	p      *store.Prediction
+	scores []byte // JSON, nil if none
+	pkey   int64
+
+	// Set per attempt.
+	stored bool
+	old    *storedContent // the stored prediction when not stored
+}
+
+// storedContent is what duplicates are judged against.
+type storedContent struct {
+	at                 time.Time
+	segment, predicted string
+	scores             map[string]float64
+}
+
+// same reports whether line p repeats content c: same predicted class,
+// segment and scores, and the same at unless p's at was defaulted.
+func (c storedContent) same(p *store.Prediction) bool {
+	return c.predicted == p.Predicted && c.segment == p.Segment && maps.Equal(c.scores, p.Scores) &&
+		(p.AtDefaulted || c.at.Equal(micro(p.At)))
+}
+
+// IngestPredictions stores a batch in one transaction; see store.Store.
+//
+// The batch is copied straight into predictions with COPY inside a
+// savepoint: in the usual case no line is known yet and that one COPY both
+// stores the batch and proves it new, through the primary key. If the key
+// refuses a line, the savepoint is rolled back, the stored content of the
+// batch's keys is read in one statement, and only the new lines are copied.
+// Counts are summed in memory and upserted once per row. Early labels are
+// looked for only when the model has any.
+func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction, now time.Time) (store.PredictionResult, error) {
+	res := store.PredictionResult{Outcomes: make([]store.PredictionOutcome, len(batch))}
+	if len(batch) == 0 {
+		return res, nil
+	}
+	names := make([]string, len(batch))
+	for i := range batch {
+		names[i] = batch[i].Model
+	}
+	ids, err := s.modelIDs(ctx, names)
+	if err != nil {
+		return res, err
+	}
+	tp := time.Now()
+	lines, repeats, err := predLines(batch, ids)
+	println("T prep", time.Since(tp).Microseconds())
+	if err != nil {
+		return res, err
+	}
+	var need []modelDay
+	seen := map[modelDay]bool{}
+	for i := range lines {
+		md := modelDay{lines[i].model, dayOf(lines[i].bucket).UnixMicro()}
+		if !seen[md] {
+			seen[md] = true
+			need = append(need, md)
+		}
+	}
+	var t *tally
+	err = s.retry(ctx, func() error {
+		if err := s.ensureDays(ctx, need); err != nil {
+			return err
+		}
+		t = newTally()
+		return s.inTx(ctx, func(c *pgx.Conn) error {
+			return s.storePredictions(ctx, c, lines, sortedModels(ids), t)
+		})
+	})
+	if err != nil {
+		return res, unavailable("ingest predictions", err)
+	}
+	for i := range lines {
+		l := &lines[i]
+		switch {
+		case l.stored:
+			res.Outcomes[l.line] = store.PredictionStored
+		case l.old.same(l.p):
+			res.Outcomes[l.line] = store.PredictionDuplicate
+		default:
+			res.Outcomes[l.line] = store.PredictionConflict
+		}
+	}
+	for i, first := range repeats {
+		l := &lines[first]
+		c := storedContent{at: l.at, segment: l.p.Segment, predicted: l.p.Predicted, scores: l.p.Scores}
+		if !l.stored {
+			c = *l.old
+		}
+		res.Outcomes[i] = store.PredictionConflict
+		if c.same(&batch[i]) {
+			res.Outcomes[i] = store.PredictionDuplicate
+		}
+	}
+	res.Changes = t.changes(namesOf(ids))
+	println("T all", time.Since(tp).Microseconds())
+	return res, nil
+}
+
+// predLines returns the first line of each (model, id) of the batch, and
+// for each later line (by batch index) the index in lines of the first.
+func predLines(batch []store.Prediction, ids map[string]int32) ([]predLine, map[int]int, error) {
+	type key struct {
+		model int32
+		id    string
+	}
+	first := make(map[key]int, len(batch))
+	lines := make([]predLine, 0, len(batch))
+	repeats := map[int]int{}
+	for i := range batch {
+		p := &batch[i]
+		k := key{ids[p.Model], p.ID}
+		if j, ok := first[k]; ok {
+			repeats[i] = j
+			continue
+		}
+		scores, err := encodeScores(p.Scores)
+		if err != nil {
+			return nil, nil, fmt.Errorf("prediction line %d: %w", i+1, err)
+		}
+		first[k] = len(lines)
+		lines = append(lines, predLine{
+			line: i, model: k.model, id: p.ID, at: micro(p.At), bucket: micro(p.Bucket),
+			p: p, scores: scores,
+		})
+	}
+	return lines, repeats, nil
+}
+
+// encodeScores returns scores as a JSON object, nil for none. It writes the
+// JSON itself, in one allocation, because it runs for every line of every
+// batch: keys in sorted order, numbers in Go's shortest form that reads
+// back exactly (PostgreSQL keeps jsonb numbers as exact decimals, so the
+// stored value is the float sent).
+func encodeScores(scores map[string]float64) ([]byte, error) {
+	if len(scores) == 0 {
+		return nil, nil
+	}
+	keys := make([]string, 0, len(scores))
+	size := 2
+	for k, v := range scores {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			return nil, fmt.Errorf("score %q is %v: %w", k, v, errBadInput)
+		}
+		keys = append(keys, k)
+		size += len(k) + 28
+	}
+	slices.Sort(keys)
+	b := make([]byte, 0, size)
+	b = append(b, '{')
+	for i, k := range keys {
+		if i > 0 {
+			b = append(b, ',')
+		}
+		if plainKey(k) {
+			b = append(b, '"')
+			b = append(b, k...)
+			b = append(b, '"')
+		} else {
+			q, err := json.Marshal(k)
+			if err != nil {
+				return nil, fmt.Errorf("encode score name: %w: %w", errBadInput, err)
+			}
+			b = append(b, q...)
+		}
+		b = append(b, ':')
+		b = strconv.AppendFloat(b, scores[k], 'g', -1, 64)
+	}
+	return append(b, '}'), nil
+}
+
+// plainKey reports whether k needs no escaping inside a JSON string.
+func plainKey(k string) bool {
+	for i := 0; i < len(k); i++ {
+		if c := k[i]; c < 0x20 || c == '"' || c == '\\' || c >= utf8.RuneSelf {
+			return false
+		}
+	}
+	return true
+}
+
+// storePredictions is one attempt at the prediction transaction.
+func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []predLine, models []int32, t *tally) error {
+	t0 := time.Now()
+	for i := range lines {
+		lines[i].stored, lines[i].old = false, nil
+	}
+	// First the shared early-label lock of each model: a label batch that
+	// holds an early label for one of these ids takes it exclusively, so
+	// either its early label is committed before this batch looks for early
+	// labels, or it waits and then finds this batch's predictions.
+	var (
+		b      pgx.Batch
+		starts []int64
+		early  bool
+	)
+	b.Queue(sqlBegin)
+	b.Queue(sqlLockModelsShare, s.keys.early, models)
+	b.Queue(sqlHasEarly, models).QueryRow(func(r pgx.Row) error { return r.Scan(&early) })
+	b.Queue(sqlKeyBlocks, (len(lines)+keyBlock-1)/keyBlock).Query(func(rows pgx.Rows) error {
+		var err error
+		starts, err = pgx.CollectRows(rows, pgx.RowTo[int64])
+		return err
+	})
+	b.Queue(sqlSavepoint)
+	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
+		return err
+	}
+	for i := range lines {
+		lines[i].pkey = starts[i/keyBlock]*keyBlock + int64(i%keyBlock)
+	}
+
+	println("T batch1", time.Since(t0).Microseconds())
+	t0 = time.Now()
+	fresh := make([]*predLine, len(lines))
+	for i := range lines {
+		fresh[i] = &lines[i]
+	}
+	err := copyPredictions(ctx, tx, fresh)
+	if pgErr := (*pgconn.PgError)(nil); errors.As(err, &pgErr) && pgErr.Code == "23505" {
+		// Some id is known: start over from the savepoint with the new ones.
+		// Should a concurrent batch store one of them meanwhile, this copy
+		// fails too and the whole attempt is retried.
+		if _, err := tx.Exec(ctx, sqlRollbackToSave); err != nil {
+			return err
+		}
+		if fresh, err = newLines(ctx, tx, lines); err != nil {
+			return err
+		}
+		err = copyPredictions(ctx, tx, fresh)
+	}
+	if err != nil {
+		return err
+	}
+	println("T copy", time.Since(t0).Microseconds())
+	t0 = time.Now()
+	if len(fresh) == 0 {
+		_, err := tx.Exec(ctx, sqlCommit)
+		return err
+	}
+	for _, l := range fresh {
+		l.stored = true
+		t.addPredicted(l.model, l.bucket, l.p.Segment, l.p.Predicted, l.at)
+	}
+	if early {
+		var v versionRows
+		if err := takeEarly(ctx, tx, fresh, &v, t); err != nil {
+			return err
+		}
+		if err := v.copy(ctx, tx); err != nil {
+			return err
+		}
+	}
+	b = pgx.Batch{}
+	t.queue(&b)
+	b.Queue(sqlCommit)
+	err = tx.SendBatch(ctx, &b).Close()
+	println("T final", time.Since(t0).Microseconds())
+	return err
+}
+
+// copyPredictions copies lines into predictions.
+func copyPredictions(ctx context.Context, tx conn, lines []*predLine) error {
+	if len(lines) == 0 {
+		return nil
+	}
+	row := make([]any, 8)
+	src := pgx.CopyFromSlice(len(lines), func(i int) ([]any, error) {
+		l := lines[i]
+		row[0], row[1], row[2], row[3] = l.pkey, l.bucket, l.at, l.model
+		row[4], row[5], row[6], row[7] = l.id, l.p.Segment, l.p.Predicted, nil
+		if l.scores != nil {
+			row[7] = l.scores
+		}
+		return row, nil
+	})
+	_, err := tx.CopyFrom(ctx, pgx.Identifier{"predictions"},
+		[]string{"pkey", "bucket", "at", "model_id", "id", "segment", "predicted", "scores"}, src)
+	return err
+}
+
+// newLines reads the stored content of the batch's keys, records it on the
+// known lines and returns the others.
+func newLines(ctx context.Context, tx conn, lines []predLine) ([]*predLine, error) {
+	type key struct {
+		model int32
+		id    string
+	}
+	models := make([]int32, len(lines))
+	idList := make([]string, len(lines))
+	index := make(map[key]*predLine, len(lines))
+	for i := range lines {
+		models[i], idList[i] = lines[i].model, lines[i].id
+		index[key{lines[i].model, lines[i].id}] = &lines[i]
+	}
+	rows, err := tx.Query(ctx, sqlStoredContent, models, idList)
+	if err != nil {
+		return nil, err
+	}
+	var (
+		k      key
+		c      storedContent
+		scores []byte
+	)
+	_, err = pgx.ForEachRow(rows, []any{&k.model, &k.id, &c.at, &c.segment, &c.predicted, &scores}, func() error {
+		old := c
+		old.scores = nil
+		if scores != nil {
+			if err := json.Unmarshal(scores, &old.scores); err != nil {
+				return fmt.Errorf("decode stored scores: %w", err)
+			}
+		}
+		index[k].old = &old
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	var fresh []*predLine
+	for i := range lines {
+		if lines[i].old == nil {
+			fresh = append(fresh, &lines[i])
+		}
+	}
+	return fresh, nil
+}
+
+// takeEarly removes the early labels of the new predictions and adds them
+// to v as label versions: each such prediction's current label is its
+// greatest (at, actual) version, counted in t.
+func takeEarly(ctx context.Context, tx conn, fresh []*predLine, v *versionRows, t *tally) error {
+	type key struct {
+		model int32
+		id    string
+	}
+	models := make([]int32, len(fresh))
+	idList := make([]string, len(fresh))
+	index := make(map[key]*predLine, len(fresh))
+	for i, l := range fresh {
+		models[i], idList[i] = l.model, l.id
+		index[key{l.model, l.id}] = l
+	}
+	rows, err := tx.Query(ctx, sqlTakeEarly, models, idList)
+	if err != nil {
+		return err
+	}
+	type best struct {
+		at     time.Time
+		actual string
+	}
+	current := map[*predLine]best{}
+	var (
+		k      key
+		at     time.Time
+		actual string
+	)
+	_, err = pgx.ForEachRow(rows, []any{&k.model, &k.id, &at, &actual}, func() error {
+		l := index[k]
+		v.add(l.model, l.bucket, l.pkey, false, at, actual)
+		if b, ok := current[l]; !ok || later(at, actual, b.at, b.actual) {
+			current[l] = best{at, actual}
+		}
+		return nil
+	})
+	if err != nil {
+		return err
+	}
+	for l, b := range current {
+		t.addCell(l.model, l.bucket, l.p.Segment, b.actual, l.p.Predicted, 1)
+	}
+	return nil
+}
+
+// later reports whether real version (at, actual) ranks above (curAt,
+// curActual): a greater at, or the same at and a greater actual.
+func later(at time.Time, actual string, curAt time.Time, curActual string) bool {
+	return at.After(curAt) || (at.Equal(curAt) && actual > curActual)
+}

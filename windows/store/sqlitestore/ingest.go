@@ -1,0 +1,528 @@
+package sqlitestore
+
+import (
+	"cmp"
+	"context"
+	"database/sql"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"slices"
+	"time"
+
+	"github.com/classwatch/classwatch/windows/store"
+)
+
+// IngestPredictions stores a batch in one transaction; see store.Store.
+//
+// Each line costs one insert into the predictions key (plus a read of the
+// stored line when the id is known). Predicted-class counts, cells and model
+// totals are summed in memory and written once per key at the end, so a
+// batch of a thousand predictions in one bucket updates one count row.
+func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction, now time.Time) (store.PredictionResult, error) {
+	res := store.PredictionResult{Outcomes: make([]store.PredictionOutcome, len(batch))}
+	if len(batch) == 0 {
+		return res, nil
+	}
+	tx, err := s.beginIngest(ctx, "begin prediction batch")
+	if err != nil {
+		return res, err
+	}
+	defer tx.Rollback()
+	insert, content, hasEarlyStmt := tx.stmt(ctx, sqlInsertPrediction), tx.stmt(ctx, sqlPredictionContent), tx.stmt(ctx, sqlHasEarly)
+	var join *earlyJoiner // bound when the first model with early labels shows up
+
+	acc := newAccumulator()
+	hasEarly := map[int64]bool{}
+	received := micros(now)
+	for i, p := range batch {
+		id, err := acc.model(ctx, s, tx, p.Model)
+		if err != nil {
+			return res, fmt.Errorf("prediction line %d: %w", i+1, err)
+		}
+		scores, err := encodeScores(p.Scores)
+		if err != nil {
+			return res, fmt.Errorf("prediction line %d: %w", i+1, err)
+		}
+		at, bucket := micros(p.At), micros(p.Bucket)
+		r, err := insert.ExecContext(ctx, id, p.ID, at, bucket, p.Segment, p.Predicted, scores, received)
+		if err != nil {
+			return res, unavailable("insert prediction", err)
+		}
+		if n, err := r.RowsAffected(); err != nil {
+			return res, unavailable("insert prediction", err)
+		} else if n == 0 {
+			same, err := sameContent(ctx, content, id, p, at, scores)
+			if err != nil {
+				return res, err
+			}
+			if same {
+				res.Outcomes[i] = store.PredictionDuplicate
+			} else {
+				res.Outcomes[i] = store.PredictionConflict
+			}
+			continue
+		}
+		res.Outcomes[i] = store.PredictionStored
+		acc.addPredicted(id, bucket, p.Segment, p.Predicted, 1)
+		acc.stored(id, at)
+
+		early, checked := hasEarly[id]
+		if !checked {
+			if err := hasEarlyStmt.QueryRowContext(ctx, id).Scan(&early); err != nil {
+				return res, unavailable("look for early labels", err)
+			}
+			hasEarly[id] = early
+		}
+		if !early {
+			continue
+		}
+		if join == nil {
+			join = newEarlyJoiner(ctx, tx)
+		}
+		actual, joined, err := join.join(ctx, id, p.ID)
+		if err != nil {
+			return res, err
+		}
+		if joined {
+			acc.addCell(id, bucket, p.Segment, actual, p.Predicted, 1)
+			acc.labeled(id, 1)
+		}
+	}
+	if err := acc.flush(ctx, tx); err != nil {
+		return res, err
+	}
+	if err := tx.Commit(); err != nil {
+		return res, unavailable("commit prediction batch", err)
+	}
+	res.Changes = acc.changes()
+	return res, nil
+}
+
+// sameContent reports whether p repeats the stored prediction (model, p.ID).
+func sameContent(ctx context.Context, content *sql.Stmt, model int64, p store.Prediction, at int64, scores sql.NullString) (bool, error) {
+	var (
+		storedAt           int64
+		segment, predicted string
+		storedScores       sql.NullString
+	)
+	if err := content.QueryRowContext(ctx, model, p.ID).Scan(&storedAt, &segment, &predicted, &storedScores); err != nil {
+		return false, unavailable("read stored prediction", err)
+	}
+	return segment == p.Segment && predicted == p.Predicted && storedScores == scores &&
+		(p.AtDefaulted || storedAt == at), nil
+}
+
+// encodeScores returns the canonical JSON of scores (encoding/json sorts map
+// keys and prints the shortest float that reads back exactly, so equal maps
+// give equal text), or NULL for none.
+func encodeScores(scores map[string]float64) (sql.NullString, error) {
+	if len(scores) == 0 {
+		return sql.NullString{}, nil
+	}
+	b, err := json.Marshal(scores)
+	if err != nil {
+		return sql.NullString{}, fmt.Errorf("encode scores: %w", err)
+	}
+	return sql.NullString{String: string(b), Valid: true}, nil
+}
+
+// earlyJoiner moves a new prediction's early labels into its label history.
+type earlyJoiner struct {
+	early, deleteEarly, insertVersion, setLabel *sql.Stmt
+}
+
+func newEarlyJoiner(ctx context.Context, tx *ingestTx) *earlyJoiner {
+	return &earlyJoiner{early: tx.stmt(ctx, sqlEarlyFor), deleteEarly: tx.stmt(ctx, sqlDeleteEarlyFor), insertVersion: tx.stmt(ctx, sqlInsertVersion), setLabel: tx.stmt(ctx, sqlSetLabel)}
+}
+
+// join moves the early labels of (model, id), if any, into label_versions
+// and makes the greatest (at, actual) the current label, which it returns.
+func (j *earlyJoiner) join(ctx context.Context, model int64, id string) (string, bool, error) {
+	type version struct {
+		at, received int64
+		actual       string
+	}
+	rows, err := j.early.QueryContext(ctx, model, id)
+	if err != nil {
+		return "", false, unavailable("read early labels", err)
+	}
+	var vs []version
+	for rows.Next() {
+		var v version
+		if err := rows.Scan(&v.at, &v.actual, &v.received); err != nil {
+			rows.Close()
+			return "", false, unavailable("read early labels", err)
+		}
+		vs = append(vs, v)
+	}
+	if err := errors.Join(rows.Err(), rows.Close()); err != nil {
+		return "", false, unavailable("read early labels", err)
+	}
+	if len(vs) == 0 {
+		return "", false, nil
+	}
+	best := vs[0]
+	for _, v := range vs {
+		if _, err := j.insertVersion.ExecContext(ctx, model, id, 0, v.at, v.actual, v.received); err != nil {
+			return "", false, unavailable("join early label", err)
+		}
+		if later(v.at, v.actual, best.at, best.actual) {
+			best = v
+		}
+	}
+	if _, err := j.deleteEarly.ExecContext(ctx, model, id); err != nil {
+		return "", false, unavailable("join early label", err)
+	}
+	if _, err := j.setLabel.ExecContext(ctx, best.actual, best.at, 0, model, id); err != nil {
+		return "", false, unavailable("join early label", err)
+	}
+	return best.actual, true, nil
+}
+
+// later reports whether real version (at, actual) ranks above (curAt,
+// curActual): a greater at, or the same at and a greater actual.
+func later(at int64, actual string, curAt int64, curActual string) bool {
+	return at > curAt || (at == curAt && actual > curActual)
+}
+
+// IngestLabels applies a batch of label versions in one transaction; see
+// store.Store. A label line costs one key lookup of its prediction and one
+// insert (of the version, or of the early label), plus an update of the
+// prediction's current label when it changes.
+func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.Time) (store.LabelResult, error) {
+	res := store.LabelResult{Outcomes: make([]store.LabelOutcome, len(batch))}
+	if len(batch) == 0 {
+		return res, nil
+	}
+	tx, err := s.beginIngest(ctx, "begin label batch")
+	if err != nil {
+		return res, err
+	}
+	defer tx.Rollback()
+	lookup, insertEarly := tx.stmt(ctx, sqlPredictionLabel), tx.stmt(ctx, sqlInsertEarly)
+	insertVersion, setLabel := tx.stmt(ctx, sqlInsertVersion), tx.stmt(ctx, sqlSetLabel)
+
+	acc := newAccumulator()
+	received := micros(now)
+	for i, l := range batch {
+		id, err := acc.model(ctx, s, tx, l.Model)
+		if err != nil {
+			return res, fmt.Errorf("label line %d: %w", i+1, err)
+		}
+		at := micros(l.At)
+		var (
+			bucket             int64
+			segment, predicted string
+			cur                sql.NullString
+			curAt, curImplied  sql.NullInt64
+		)
+		err = lookup.QueryRowContext(ctx, id, l.ID).Scan(&bucket, &segment, &predicted, &cur, &curAt, &curImplied)
+		if errors.Is(err, sql.ErrNoRows) {
+			n, err := affected(insertEarly.ExecContext(ctx, id, l.ID, at, l.Actual, received))
+			if err != nil {
+				return res, unavailable("insert early label", err)
+			}
+			res.Outcomes[i] = store.LabelEarly
+			if n == 0 {
+				res.Outcomes[i] = store.LabelDuplicate // this early version is already held
+			}
+			continue
+		}
+		if err != nil {
+			return res, unavailable("look up prediction", err)
+		}
+		n, err := affected(insertVersion.ExecContext(ctx, id, l.ID, 0, at, l.Actual, received))
+		if err != nil {
+			return res, unavailable("insert label version", err)
+		}
+		if n == 0 { // a known version was already ranked
+			res.Outcomes[i] = store.LabelDuplicate
+			continue
+		}
+		// A new real version becomes current when there is no version yet,
+		// when the current one is implied (a real version always wins), or
+		// when it ranks above the current real one.
+		becomes := !cur.Valid || curImplied.Int64 == 1 || later(at, l.Actual, curAt.Int64, cur.String)
+		if !becomes {
+			res.Outcomes[i] = store.LabelDuplicate
+			continue
+		}
+		if _, err := setLabel.ExecContext(ctx, l.Actual, at, 0, id, l.ID); err != nil {
+			return res, unavailable("set current label", err)
+		}
+		switch {
+		case !cur.Valid:
+			res.Outcomes[i] = store.LabelMatched
+			acc.addCell(id, bucket, segment, l.Actual, predicted, 1)
+			acc.labeled(id, 1)
+		case cur.String != l.Actual:
+			res.Outcomes[i] = store.LabelCorrected
+			acc.addCell(id, bucket, segment, cur.String, predicted, -1)
+			acc.addCell(id, bucket, segment, l.Actual, predicted, 1)
+		default:
+			// Same actual, newer version (or the real version confirming
+			// an implied one): no cell moves.
+			res.Outcomes[i] = store.LabelDuplicate
+		}
+	}
+	if err := acc.flush(ctx, tx); err != nil {
+		return res, err
+	}
+	if err := tx.Commit(); err != nil {
+		return res, unavailable("commit label batch", err)
+	}
+	res.Changes = acc.changes()
+	return res, nil
+}
+
+// ApplyLabelTimeout gives due unlabeled predictions their implied version;
+// see store.Store. It is three set-based statements over the partial index
+// of unlabeled predictions.
+func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, timeout time.Duration, now time.Time) (int64, store.Changes, error) {
+	tx, err := s.beginIngest(ctx, "begin label timeout")
+	if err != nil {
+		return 0, store.Changes{}, err
+	}
+	defer tx.Rollback()
+	acc := newAccumulator()
+	id, err := acc.model(ctx, s, tx, model)
+	if err != nil {
+		return 0, store.Changes{}, err
+	}
+	cutoff, shift := micros(now)-timeout.Microseconds(), timeout.Microseconds()
+
+	rows, err := tx.QueryContext(ctx, sqlDueGroups, id, cutoff)
+	if err != nil {
+		return 0, store.Changes{}, unavailable("find due predictions", err)
+	}
+	for rows.Next() {
+		var (
+			bucket, n          int64
+			segment, predicted string
+		)
+		if err := rows.Scan(&bucket, &segment, &predicted, &n); err != nil {
+			rows.Close()
+			return 0, store.Changes{}, unavailable("find due predictions", err)
+		}
+		acc.addCell(id, bucket, segment, label, predicted, n)
+	}
+	if err := errors.Join(rows.Err(), rows.Close()); err != nil {
+		return 0, store.Changes{}, unavailable("find due predictions", err)
+	}
+	if len(acc.cells) == 0 {
+		return 0, store.Changes{}, nil
+	}
+	if _, err := tx.ExecContext(ctx, sqlInsertImplied, id, cutoff, shift, label, micros(now)); err != nil {
+		return 0, store.Changes{}, unavailable("insert implied labels", err)
+	}
+	n, err := affected(tx.ExecContext(ctx, sqlSetImplied, id, cutoff, shift, label))
+	if err != nil {
+		return 0, store.Changes{}, unavailable("set implied labels", err)
+	}
+	acc.labeled(id, n)
+	if err := acc.flush(ctx, tx); err != nil {
+		return 0, store.Changes{}, err
+	}
+	if err := tx.Commit(); err != nil {
+		return 0, store.Changes{}, unavailable("commit label timeout", err)
+	}
+	return n, acc.changes(), nil
+}
+
+// ExpireEarlyLabels drops early labels received at or before now−ttl; see
+// store.Store.
+func (s *Store) ExpireEarlyLabels(ctx context.Context, model string, ttl time.Duration, now time.Time) (int64, error) {
+	id, err := s.modelID(ctx, s.read, model)
+	if err != nil {
+		return 0, err
+	}
+	n, err := affected(s.write.ExecContext(ctx, sqlExpireEarly, id, micros(now)-ttl.Microseconds()))
+	if err != nil {
+		return 0, unavailable("expire early labels", err)
+	}
+	return n, nil
+}
+
+// PurgeRaw drops the raw predictions of buckets starting before cutoff and
+// their label versions, keeping cells and counts; see store.Store. Verify
+// skips those buckets from then on.
+func (s *Store) PurgeRaw(ctx context.Context, model string, cutoff time.Time) (int64, error) {
+	tx, err := s.write.BeginTx(ctx, nil)
+	if err != nil {
+		return 0, unavailable("begin purge", err)
+	}
+	defer tx.Rollback()
+	id, err := s.modelID(ctx, tx, model)
+	if err != nil {
+		return 0, err
+	}
+	c := micros(cutoff)
+	var n, labeled int64
+	if err := tx.QueryRowContext(ctx, sqlPurgeTotals, id, c).Scan(&n, &labeled); err != nil {
+		return 0, unavailable("count purged predictions", err)
+	}
+	if _, err := tx.ExecContext(ctx, sqlPurgeLabels, id, c); err != nil {
+		return 0, unavailable("purge label versions", err)
+	}
+	if _, err := tx.ExecContext(ctx, sqlPurgePredictions, id, c); err != nil {
+		return 0, unavailable("purge predictions", err)
+	}
+	if _, err := tx.ExecContext(ctx, sqlPurgeMark, id, n, labeled, c); err != nil {
+		return 0, unavailable("mark purge", err)
+	}
+	if err := tx.Commit(); err != nil {
+		return 0, unavailable("commit purge", err)
+	}
+	return n, nil
+}
+
+// affected returns the rows an Exec changed.
+func affected(r sql.Result, err error) (int64, error) {
+	if err != nil {
+		return 0, err
+	}
+	return r.RowsAffected()
+}
+
+// cellKey and predKey address maintained rows; accumulator sums a call's
+// increments per row before writing them.
+type (
+	cellKey struct {
+		model                      int64
+		bucket                     int64
+		segment, actual, predicted string
+	}
+	predKey struct {
+		model              int64
+		bucket             int64
+		segment, predicted string
+	}
+	modelTotals struct {
+		predictions, labeled int64
+		latest               sql.NullInt64
+	}
+)
+
+type accumulator struct {
+	names     map[string]int64 // this call's models
+	cells     map[cellKey]int64
+	predicted map[predKey]int64
+	totals    map[int64]*modelTotals
+}
+
+func newAccumulator() *accumulator {
+	return &accumulator{
+		names:     map[string]int64{},
+		cells:     map[cellKey]int64{},
+		predicted: map[predKey]int64{},
+		totals:    map[int64]*modelTotals{},
+	}
+}
+
+// model resolves a model name once per call.
+func (a *accumulator) model(ctx context.Context, s *Store, tx *ingestTx, name string) (int64, error) {
+	if id, ok := a.names[name]; ok {
+		return id, nil
+	}
+	id, err := s.modelID(ctx, tx, name)
+	if err != nil {
+		return 0, err
+	}
+	a.names[name] = id
+	a.totals[id] = &modelTotals{}
+	return id, nil
+}
+
+func (a *accumulator) addCell(model, bucket int64, segment, actual, predicted string, n int64) {
+	a.cells[cellKey{model, bucket, segment, actual, predicted}] += n
+}
+
+func (a *accumulator) addPredicted(model, bucket int64, segment, predicted string, n int64) {
+	a.predicted[predKey{model, bucket, segment, predicted}] += n
+}
+
+func (a *accumulator) stored(model, at int64) {
+	t := a.totals[model]
+	t.predictions++
+	if !t.latest.Valid || at > t.latest.Int64 {
+		t.latest = sql.NullInt64{Int64: at, Valid: true}
+	}
+}
+
+func (a *accumulator) labeled(model, n int64) { a.totals[model].labeled += n }
+
+// flush writes the summed increments; a net zero writes nothing.
+func (a *accumulator) flush(ctx context.Context, tx *ingestTx) error {
+	addCell, addPredicted, totals := tx.stmt(ctx, sqlAddCell), tx.stmt(ctx, sqlAddPredicted), tx.stmt(ctx, sqlModelTotals)
+	for k, n := range a.cells {
+		if n == 0 {
+			continue
+		}
+		if _, err := addCell.ExecContext(ctx, k.model, k.bucket, k.segment, k.actual, k.predicted, n); err != nil {
+			return unavailable("update cell", err)
+		}
+	}
+	for k, n := range a.predicted {
+		if n == 0 {
+			continue
+		}
+		if _, err := addPredicted.ExecContext(ctx, k.model, k.bucket, k.segment, k.predicted, n); err != nil {
+			return unavailable("update predicted count", err)
+		}
+	}
+	for id, t := range a.totals {
+		if t.predictions == 0 && t.labeled == 0 {
+			continue
+		}
+		if _, err := totals.ExecContext(ctx, id, t.predictions, t.labeled, t.latest); err != nil {
+			return unavailable("update model totals", err)
+		}
+	}
+	return nil
+}
+
+// changes sums the increments over segments into the call's net deltas,
+// leaving out the ones that cancelled, ordered by model, bucket and classes.
+func (a *accumulator) changes() store.Changes {
+	names := make(map[int64]string, len(a.names))
+	for name, id := range a.names {
+		names[id] = name
+	}
+	type ck struct {
+		model             int64
+		bucket            int64
+		actual, predicted string
+	}
+	type pk struct {
+		model     int64
+		bucket    int64
+		predicted string
+	}
+	cells := map[ck]int64{}
+	for k, n := range a.cells {
+		cells[ck{k.model, k.bucket, k.actual, k.predicted}] += n
+	}
+	pred := map[pk]int64{}
+	for k, n := range a.predicted {
+		pred[pk{k.model, k.bucket, k.predicted}] += n
+	}
+	var out store.Changes
+	for k, n := range cells {
+		if n != 0 {
+			out.Cells = append(out.Cells, store.CellDelta{Model: names[k.model], Bucket: fromMicros(k.bucket), Actual: k.actual, Predicted: k.predicted, N: n})
+		}
+	}
+	for k, n := range pred {
+		if n != 0 {
+			out.Predicted = append(out.Predicted, store.PredictedDelta{Model: names[k.model], Bucket: fromMicros(k.bucket), Predicted: k.predicted, N: n})
+		}
+	}
+	slices.SortFunc(out.Cells, func(x, y store.CellDelta) int {
+		return cmp.Or(cmp.Compare(x.Model, y.Model), x.Bucket.Compare(y.Bucket), cmp.Compare(x.Actual, y.Actual), cmp.Compare(x.Predicted, y.Predicted))
+	})
+	slices.SortFunc(out.Predicted, func(x, y store.PredictedDelta) int {
+		return cmp.Or(cmp.Compare(x.Model, y.Model), x.Bucket.Compare(y.Bucket), cmp.Compare(x.Predicted, y.Predicted))
+	})
+	return out
+}

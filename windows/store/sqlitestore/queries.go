@@ -1,0 +1,185 @@
+package sqlitestore
+
+// Every statement the store runs is one of these constants; nothing builds
+// SQL at run time. Times are bound as Unix microseconds.
+
+// Schema versions.
+const (
+	sqlCreateVersionTable = `CREATE TABLE IF NOT EXISTS schema_version (
+    version    INTEGER PRIMARY KEY,
+    name       TEXT    NOT NULL,
+    applied_at INTEGER NOT NULL
+)`
+	sqlHasVersionTable = `SELECT EXISTS (SELECT 1 FROM sqlite_schema WHERE type = 'table' AND name = 'schema_version')`
+	sqlSchemaVersion   = `SELECT COALESCE(MAX(version), 0) FROM schema_version`
+	sqlRecordVersion   = `INSERT INTO schema_version (version, name, applied_at) VALUES (?, ?, ?)`
+)
+
+// Model registry.
+const (
+	sqlModelID     = `SELECT id FROM models WHERE name = ?`
+	sqlInsertModel = `INSERT INTO models (name) VALUES (?)`
+	sqlClasses     = `SELECT name FROM model_classes WHERE model_id = ? ORDER BY position`
+	sqlInsertClass = `INSERT INTO model_classes (model_id, position, name) VALUES (?, ?, ?)`
+	sqlModels      = `SELECT id, name, latest_at, predictions, labeled FROM models ORDER BY name`
+	sqlAllClasses  = `SELECT model_id, name FROM model_classes ORDER BY model_id, position`
+	// sqlModelTotals adds a call's stored predictions and newly labeled ones
+	// and raises latest_at.
+	sqlModelTotals = `UPDATE models
+SET predictions = predictions + ?2,
+    labeled = labeled + ?3,
+    latest_at = CASE WHEN ?4 IS NULL THEN latest_at
+                     WHEN latest_at IS NULL OR ?4 > latest_at THEN ?4
+                     ELSE latest_at END
+WHERE id = ?1`
+)
+
+// Prediction ingest.
+const (
+	sqlInsertPrediction = `INSERT INTO predictions (model_id, id, at, bucket, segment, predicted, scores, received_at)
+VALUES (?, ?, ?, ?, ?, ?, ?, ?)
+ON CONFLICT (model_id, id) DO NOTHING`
+	sqlPredictionContent = `SELECT at, segment, predicted, scores FROM predictions WHERE model_id = ? AND id = ?`
+	sqlHasEarly          = `SELECT EXISTS (SELECT 1 FROM early_labels WHERE model_id = ?)`
+	sqlEarlyFor          = `SELECT at, actual, received_at FROM early_labels WHERE model_id = ? AND id = ?`
+	sqlDeleteEarlyFor    = `DELETE FROM early_labels WHERE model_id = ? AND id = ?`
+	sqlAddPredicted      = `INSERT INTO predicted_counts (model_id, bucket, segment, predicted, n)
+VALUES (?, ?, ?, ?, ?)
+ON CONFLICT (model_id, bucket, segment, predicted) DO UPDATE SET n = n + excluded.n`
+)
+
+// Label ingest.
+const (
+	sqlPredictionLabel = `SELECT bucket, segment, predicted, label, label_at, label_implied
+FROM predictions WHERE model_id = ? AND id = ?`
+	sqlInsertEarly = `INSERT INTO early_labels (model_id, id, at, actual, received_at)
+VALUES (?, ?, ?, ?, ?)
+ON CONFLICT (model_id, id, at, actual) DO NOTHING`
+	sqlInsertVersion = `INSERT INTO label_versions (model_id, id, implied, at, actual, received_at)
+VALUES (?, ?, ?, ?, ?, ?)
+ON CONFLICT (model_id, id, implied, at, actual) DO NOTHING`
+	sqlSetLabel = `UPDATE predictions SET label = ?, label_at = ?, label_implied = ?
+WHERE model_id = ? AND id = ?`
+	sqlAddCell = `INSERT INTO cells (model_id, bucket, segment, actual, predicted, n)
+VALUES (?, ?, ?, ?, ?, ?)
+ON CONFLICT (model_id, bucket, segment, actual, predicted) DO UPDATE SET n = n + excluded.n`
+)
+
+// Maintenance. The label-timeout statements share one predicate: unlabeled
+// predictions of model ?1 with at ≤ ?2 (now − timeout).
+const (
+	sqlDueGroups = `SELECT bucket, segment, predicted, COUNT(*) FROM predictions
+WHERE model_id = ?1 AND label IS NULL AND at <= ?2
+GROUP BY bucket, segment, predicted`
+	sqlInsertImplied = `INSERT INTO label_versions (model_id, id, implied, at, actual, received_at)
+SELECT model_id, id, 1, at + ?3, ?4, ?5 FROM predictions
+WHERE model_id = ?1 AND label IS NULL AND at <= ?2`
+	sqlSetImplied = `UPDATE predictions SET label = ?4, label_at = at + ?3, label_implied = 1
+WHERE model_id = ?1 AND label IS NULL AND at <= ?2`
+	sqlExpireEarly = `DELETE FROM early_labels WHERE model_id = ? AND received_at <= ?`
+	sqlPurgeTotals = `SELECT COUNT(*), COUNT(label) FROM predictions WHERE model_id = ? AND bucket < ?`
+	sqlPurgeLabels = `DELETE FROM label_versions
+WHERE model_id = ?1 AND id IN (SELECT id FROM predictions WHERE model_id = ?1 AND bucket < ?2)`
+	sqlPurgePredictions = `DELETE FROM predictions WHERE model_id = ? AND bucket < ?`
+	sqlPurgeMark        = `UPDATE models
+SET predictions = predictions - ?2,
+    labeled = labeled - ?3,
+    purged_before = MAX(COALESCE(purged_before, ?4), ?4)
+WHERE id = ?1`
+)
+
+// Reads. ?4 is the segment or NULL for all segments; zero sums are left out
+// because a cell moved away by corrections holds no prediction.
+const (
+	sqlCells = `SELECT bucket, actual, predicted, SUM(n) FROM cells
+WHERE model_id = ?1 AND bucket >= ?2 AND bucket < ?3 AND (?4 IS NULL OR segment = ?4)
+GROUP BY bucket, actual, predicted HAVING SUM(n) <> 0
+ORDER BY bucket, actual, predicted`
+	sqlPredicted = `SELECT bucket, predicted, SUM(n) FROM predicted_counts
+WHERE model_id = ?1 AND bucket >= ?2 AND bucket < ?3 AND (?4 IS NULL OR segment = ?4)
+GROUP BY bucket, predicted HAVING SUM(n) <> 0
+ORDER BY bucket, predicted`
+	// sqlCellsAsOf ranks each prediction's versions known at ?5: real before
+	// implied, then greatest at, then greatest actual; predictions made after
+	// ?5 were not known then and are left out.
+	sqlCellsAsOf = `WITH p AS (
+    SELECT id, bucket, predicted FROM predictions
+    WHERE model_id = ?1 AND bucket >= ?2 AND bucket < ?3 AND (?4 IS NULL OR segment = ?4) AND at <= ?5
+), v AS (
+    SELECT v.id, v.actual,
+           ROW_NUMBER() OVER (PARTITION BY v.id ORDER BY v.implied, v.at DESC, v.actual DESC) AS rank
+    FROM label_versions v JOIN p ON p.id = v.id
+    WHERE v.model_id = ?1 AND v.at <= ?5
+)
+SELECT p.bucket, v.actual, p.predicted, COUNT(*) FROM p JOIN v ON v.id = p.id AND v.rank = 1
+GROUP BY p.bucket, v.actual, p.predicted
+ORDER BY p.bucket, v.actual, p.predicted`
+	sqlPredictedAsOf = `SELECT bucket, predicted, COUNT(*) FROM predictions
+WHERE model_id = ?1 AND bucket >= ?2 AND bucket < ?3 AND (?4 IS NULL OR segment = ?4) AND at <= ?5
+GROUP BY bucket, predicted
+ORDER BY bucket, predicted`
+	// sqlVerifyCells compares maintained cells with cells recounted from
+	// raw rows and label history, in buckets whose raw rows are still kept
+	// (from the model's purged_before on).
+	sqlVerifyCells = `WITH cur AS (
+    SELECT model_id, id, actual,
+           ROW_NUMBER() OVER (PARTITION BY model_id, id ORDER BY implied, at DESC, actual DESC) AS rank
+    FROM label_versions
+), re AS (
+    SELECT p.model_id, p.bucket, p.segment, c.actual, p.predicted, COUNT(*) AS n
+    FROM predictions p JOIN cur c ON c.model_id = p.model_id AND c.id = p.id AND c.rank = 1
+    JOIN models m ON m.id = p.model_id
+    WHERE m.purged_before IS NULL OR p.bucket >= m.purged_before
+    GROUP BY p.model_id, p.bucket, p.segment, c.actual, p.predicted
+), st AS (
+    SELECT c.model_id, c.bucket, c.segment, c.actual, c.predicted, c.n
+    FROM cells c JOIN models m ON m.id = c.model_id
+    WHERE m.purged_before IS NULL OR c.bucket >= m.purged_before
+)
+SELECT m.name, d.bucket, d.segment, d.actual, d.predicted, d.stored, d.recounted
+FROM (
+    SELECT COALESCE(st.model_id, re.model_id) AS model_id, COALESCE(st.bucket, re.bucket) AS bucket,
+           COALESCE(st.segment, re.segment) AS segment, COALESCE(st.actual, re.actual) AS actual,
+           COALESCE(st.predicted, re.predicted) AS predicted,
+           COALESCE(st.n, 0) AS stored, COALESCE(re.n, 0) AS recounted
+    FROM st FULL JOIN re ON re.model_id = st.model_id AND re.bucket = st.bucket
+        AND re.segment = st.segment AND re.actual = st.actual AND re.predicted = st.predicted
+) d JOIN models m ON m.id = d.model_id
+WHERE d.stored <> d.recounted
+ORDER BY m.name, d.bucket, d.segment, d.actual, d.predicted`
+	sqlVerifyPredicted = `WITH re AS (
+    SELECT p.model_id, p.bucket, p.segment, p.predicted, COUNT(*) AS n
+    FROM predictions p JOIN models m ON m.id = p.model_id
+    WHERE m.purged_before IS NULL OR p.bucket >= m.purged_before
+    GROUP BY p.model_id, p.bucket, p.segment, p.predicted
+), st AS (
+    SELECT c.model_id, c.bucket, c.segment, c.predicted, c.n
+    FROM predicted_counts c JOIN models m ON m.id = c.model_id
+    WHERE m.purged_before IS NULL OR c.bucket >= m.purged_before
+)
+SELECT m.name, d.bucket, d.segment, d.predicted, d.stored, d.recounted
+FROM (
+    SELECT COALESCE(st.model_id, re.model_id) AS model_id, COALESCE(st.bucket, re.bucket) AS bucket,
+           COALESCE(st.segment, re.segment) AS segment, COALESCE(st.predicted, re.predicted) AS predicted,
+           COALESCE(st.n, 0) AS stored, COALESCE(re.n, 0) AS recounted
+    FROM st FULL JOIN re ON re.model_id = st.model_id AND re.bucket = st.bucket
+        AND re.segment = st.segment AND re.predicted = st.predicted
+) d JOIN models m ON m.id = d.model_id
+WHERE d.stored <> d.recounted
+ORDER BY m.name, d.bucket, d.segment, d.predicted`
+)
+
+// Alerts.
+const (
+	sqlUpsertAlert = `INSERT INTO alerts (key, rule, model, class, state, data, updated_at)
+VALUES (?, ?, ?, ?, ?, ?, ?)
+ON CONFLICT (key) DO UPDATE SET rule = excluded.rule, model = excluded.model, class = excluded.class,
+    state = excluded.state, data = excluded.data, updated_at = excluded.updated_at`
+	sqlInsertAlertHistory = `INSERT INTO alert_history (key, rule, model, class, state, data, updated_at)
+VALUES (?, ?, ?, ?, ?, ?, ?)`
+	sqlAlerts       = `SELECT key, rule, model, class, state, data, updated_at FROM alerts ORDER BY key`
+	sqlAlertHistory = `SELECT key, rule, model, class, state, data, updated_at FROM alert_history
+WHERE updated_at >= ? AND updated_at < ?
+ORDER BY updated_at DESC, seq DESC
+LIMIT ?`
+)
