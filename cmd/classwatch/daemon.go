@@ -193,8 +193,8 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 		// An ingest slot is taken before the body is read, so a slow sender
 		// must not hold one for long.
 		ReadTimeout: time.Minute,
-		IdleTimeout:       2 * time.Minute,
-		ErrorLog:          slog.NewLogLogger(log.Handler(), slog.LevelWarn),
+		IdleTimeout: 2 * time.Minute,
+		ErrorLog:    slog.NewLogLogger(log.Handler(), slog.LevelWarn),
 	}
 	return d, nil
 }

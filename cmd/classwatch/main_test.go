@@ -1,0 +1,55 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+)
+
+// runCLI runs the command line in-process and returns its exit status and
+// output, as main would.
+func runCLI(t *testing.T, args ...string) (int, string, string) {
+	t.Helper()
+	var stdout, stderr bytes.Buffer
+	err := run(context.Background(), args, &stdout, &stderr)
+	return exitCode(err, &stderr), stdout.String(), stderr.String()
+}
+
+func TestExitCodes(t *testing.T) {
+	bad := filepath.Join(t.TempDir(), "bad.yml")
+	if err := os.WriteFile(bad, []byte("alerts:\n  - name: x\n    kind: floor\n    modle: card-screen\n"), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	tests := []struct {
+		name     string
+		args     []string
+		want     int
+		wantText string
+	}{
+		{"no command", nil, 2, "no command given"},
+		{"unknown command", []string{"launch"}, 2, `unknown command "launch"`},
+		{"help", []string{"help"}, 0, "classwatch serve"},
+		{"serve help", []string{"serve", "--help"}, 0, "--listen"},
+		{"unknown flag", []string{"verify", "--frobnicate"}, 2, "frobnicate"},
+		{"audit needs model", []string{"audit", "--from", "2026-01-01T00:00:00Z"}, 2, "--model, --from and --to are required"},
+		{"audit bad time", []string{"audit", "--model", "m", "--from", "yesterday", "--to", "2026-01-01T00:00:00Z"}, 2, "RFC 3339"},
+		{"ingest bad kind", []string{"ingest", "scores", "x.ndjson"}, 2, "predictions or labels"},
+		{"rules example", []string{"rules", "check", "../../deploy/classwatch.example.yml"}, 0, "rules are valid"},
+		{"rules typo", []string{"rules", "check", bad}, 1, "modle"},
+		{"missing config", []string{"verify", "--config", filepath.Join(t.TempDir(), "nope.yml")}, 1, "open config"},
+	}
+	for _, tt := range tests {
+		t.Run(tt.name, func(t *testing.T) {
+			code, out, errOut := runCLI(t, tt.args...)
+			if code != tt.want {
+				t.Errorf("exit status = %d, want %d (stderr %q)", code, tt.want, errOut)
+			}
+			if !strings.Contains(out+errOut, tt.wantText) {
+				t.Errorf("output lacks %q:\nstdout: %s\nstderr: %s", tt.wantText, out, errOut)
+			}
+		})
+	}
+}
