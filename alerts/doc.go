@@ -20,9 +20,10 @@
 //     Label coverage of a matured window below a floor is a floor rule on
 //     label_coverage.
 //   - drop: per-class recall, precision or specificity lower than in a
-//     reference period by more than margin: two-proportion test, one-sided
-//     at level 1 − confidence (with a margin, Farrington & Manning's score
-//     test), Benjamini–Hochberg across the rule's classes of a model.
+//     reference period by more than margin: a one-sided comparison of two
+//     proportions at level 1 − confidence (Fisher's exact test; with a
+//     margin, Farrington & Manning's score test),
+//     Benjamini–Hochberg across the rule's classes of a model.
 //   - confusion_rise: the share of actual class A predicted as B rose
 //     against the reference by more than margin; the same tests.
 //   - prevalence_shift, output_shift: the actual-class (or predicted-class,
@@ -35,6 +36,46 @@
 // period and in the reference; below that the outcome is unknown. The
 // reference is another window or a fixed range; buckets it shares with the
 // current window are left out of it, so the two samples are disjoint.
+//
+// # Configuration
+//
+// The daemon's config holds the rules under "alerts:" and the receivers
+// under "notifiers:" (ParseRules, ParseNotifiers; "classwatch rules check
+// F" runs CheckFile). Every rule takes name, kind, model (a name or "all"),
+// window (not silence), and optionally schedule (cron, UTC; default every
+// minute), severity (default warning), labels, annotations (text/template
+// over TemplateData), fire_after, resolve_after (default 1), confidence
+// (default: the daemon's) and min_count (default 30). By kind:
+//
+//	floor, ceiling    metric, threshold, classes, interval (wilson, jeffreys, none)
+//	drop              reference, metric (recall, precision, specificity), classes, margin
+//	confusion_rise    reference, pairs [{actual, predicted}], margin
+//	prevalence_shift  reference, test (chi_square, g_test, none), psi_threshold
+//	output_shift      reference, test, psi_threshold
+//	silence           silent_for
+//
+// A reference is {window: NAME} or {from: RFC 3339, to: RFC 3339}. For
+// example:
+//
+//	alerts:
+//	  - name: fraud-recall-drop
+//	    kind: drop
+//	    model: card-fraud
+//	    window: 1d
+//	    classes: [fraud]
+//	    margin: 0.05
+//	    reference: {window: 7d-matured}
+//	    severity: page
+//	    fire_after: 2
+//	notifiers:
+//	  - {name: oncall, type: alertmanager, url: "http://127.0.0.1:9093"}
+//	  - {name: audit, type: webhook, url: "https://hooks.example/cw", bearer_token_file: /etc/cw/token}
+//
+// Notifiers take name, type (alertmanager, webhook), url, bearer_token or
+// bearer_token_file, timeout (10s), max_attempts (5), retry_wait (1s,
+// doubling), queue_size (1000) and, for alertmanager, resend_interval (1m).
+// Unknown keys, keys that do not apply to a rule's kind, and bad values are
+// errors naming the key and its line.
 //
 // Rules are evaluated at their cron schedule's times (UTC). Each
 // evaluation yields, per alert instance (rule × model × class, or × pair of
@@ -52,8 +93,9 @@
 // fire_after and resolve_after count consecutive evaluations (hysteresis);
 // with fire_after 1 an alert fires at the first evaluation that meets the
 // condition. An unknown outcome holds the state and the counters: missing
-// data neither fires nor resolves an alert. An instance the rule no longer
-// covers counts as clear.
+// data neither fires nor resolves an alert, and neither does a window the
+// window source does not know yet. An instance the rule no longer covers (a
+// class or pair taken out of its config) counts as clear.
 //
 // Every change of an instance is saved with Store.SaveAlert before the
 // manager acts on it, and every change of state is appended to the

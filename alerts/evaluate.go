@@ -2,6 +2,7 @@ package alerts
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"math"
 	"slices"
@@ -19,6 +20,9 @@ const psiEpsilon = 1e-4
 // G test; sparser categories are pooled first. Cochran's rule of thumb
 // (common practice): the chi-square approximation is poor below about 5.
 const minExpected = 5
+
+// errNoWindow: the window source does not know the model's window.
+var errNoWindow = errors.New("window unknown to the window source")
 
 // finding is one instance's result of one evaluation.
 type finding struct {
@@ -90,6 +94,9 @@ func (m *Manager) evalRule(ctx context.Context, env *evalEnv, r *rule) ([]findin
 		default:
 			var ref period
 			ref, err = m.reference(ctx, env, r, mi, &cur)
+			if errors.Is(err, errNoWindow) && r.Model == AllModels {
+				continue
+			}
 			if err != nil {
 				return nil, nil, fmt.Errorf("model %s: read reference %s: %w", mi.Name, r.Reference, err)
 			}
@@ -448,7 +455,7 @@ func (m *Manager) reference(ctx context.Context, env *evalEnv, r *rule, mi store
 	if ref.Window != "" {
 		v, ok := m.view(mi.Name, ref.Window)
 		if !ok {
-			return period{}, fmt.Errorf("no window %s", ref.Window)
+			return period{}, errNoWindow
 		}
 		p := period{from: v.From, to: v.To, m: v.Matrix, pred: v.Predicted}
 		if err := align(cur, &p); err != nil {

@@ -54,6 +54,9 @@ func TestTakeOverPostgres(t *testing.T) {
 	if a := h.next(t); a.State != StateFiring {
 		t.Fatalf("notice %s, want firing", a.State)
 	}
+	// The first replica records the delivery just after the receiver
+	// answered; dying before that would rightly send the notice again.
+	waitNotified(t, s1, floorKey, h.config().Name, StateFiring)
 
 	s1.Close() // the first daemon dies: PostgreSQL ends its sessions and frees the lock
 	if !m2.lead(ctx) {

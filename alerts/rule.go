@@ -26,8 +26,9 @@ const (
 	// the threshold.
 	KindCeiling Kind = "ceiling"
 	// KindDrop fires when a per-class recall, precision or specificity is
-	// lower than in a reference period by more than a margin (one-sided
-	// two-proportion test, Benjamini–Hochberg across the rule's classes).
+	// lower than in a reference period by more than a margin (a one-sided
+	// comparison of two proportions, Benjamini–Hochberg across the rule's
+	// classes).
 	KindDrop Kind = "drop"
 	// KindPrevalenceShift fires when the actual-class distribution differs
 	// from the reference period's.

@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"github.com/classwatch/classwatch/windows"
+	"github.com/classwatch/classwatch/windows/stats"
 	"github.com/classwatch/classwatch/windows/store"
 )
 
@@ -231,11 +232,12 @@ func TestCeilingEdges(t *testing.T) {
 }
 
 // TestDropEdges checks drop rules at the p-value just at or below the level
-// and just above it. Sources (testdata/golden.json): statsmodels 0.13.5
-// proportions_ztest(alternative='smaller') for margin 0; Farrington &
-// Manning's score test from statsmodels' restricted estimates for a margin;
-// confint_proportions_2indep(method='newcomb') for the difference;
-// proportion_confint(method='wilson') for the current recall.
+// and just above it. Sources (testdata/golden.json): scipy 1.10.1
+// stats.fisher_exact (one-sided; checked there against stats.hypergeom) for
+// margin 0; Farrington & Manning's score test with
+// the restricted estimate from scipy.optimize.brentq for a margin;
+// statsmodels 0.13.5 confint_proportions_2indep(method='newcomb') for the
+// difference; proportion_confint(method='wilson') for the current recall.
 func TestDropEdges(t *testing.T) {
 	g := loadGolden(t)
 	for _, c := range g.Drop {
@@ -268,8 +270,8 @@ func TestDropEdges(t *testing.T) {
 }
 
 // TestConfusionRiseEdges checks the share of fraud predicted as legit
-// against the reference at the level's edge. Sources as TestDropEdges,
-// with alternative='larger'.
+// against the reference at the level's edge. Sources as TestDropEdges, in
+// the upper tail.
 func TestConfusionRiseEdges(t *testing.T) {
 	g := loadGolden(t)
 	for _, c := range g.Rise {
@@ -301,8 +303,8 @@ func TestConfusionRiseEdges(t *testing.T) {
 // TestDropBenjaminiHochberg checks that a drop rule over three classes
 // decides them together: the second class's p-value lies below the level
 // but above its Benjamini–Hochberg threshold, so it does not fire. Sources:
-// statsmodels 0.13.5 proportions_ztest and multipletests(method='fdr_bh')
-// via testdata/golden.json.
+// scipy 1.10.1 stats.fisher_exact and statsmodels 0.13.5
+// multipletests(method='fdr_bh') via testdata/golden.json.
 func TestDropBenjaminiHochberg(t *testing.T) {
 	g := loadGolden(t)
 	b := setup(t)
@@ -562,15 +564,35 @@ func TestSilence(t *testing.T) {
 }
 
 // TestScoreTestReducesToPooled checks that the margin test joins the
-// pooled z-test as the margin goes to zero (Farrington & Manning 1990: the
-// restricted estimates become the pooled proportion).
+// pooled z-test of stats.TwoProportion as the margin goes to zero
+// (Farrington & Manning 1990: the restricted estimates become the pooled
+// proportion).
 func TestScoreTestReducesToPooled(t *testing.T) {
 	cur, ref := proportion{84, 100}, proportion{900, 1000}
-	_, pooled, err := compare(cur, ref, 0, 0.95, true)
+	c, err := stats.TwoProportion(cur.x, cur.n, ref.x, ref.n, 0.95)
 	if err != nil {
 		t.Fatal(err)
 	}
-	if got := scoreLess(cur, ref, 1e-12); !near(got, pooled, 1e-9) {
-		t.Errorf("score test at margin 1e-12 = %.12g, pooled z-test = %.12g", got, pooled)
+	if got := scoreLess(cur, ref, 1e-12); !near(got, c.PLess, 1e-9) {
+		t.Errorf("score test at margin 1e-12 = %.12g, pooled z-test = %.12g", got, c.PLess)
+	}
+}
+
+// TestFisherTails checks the exact test far in both tails, where the
+// terms underflow, and on a degenerate table.
+func TestFisherTails(t *testing.T) {
+	for _, c := range []struct {
+		p1, p2   proportion
+		lo, hi   float64
+		describe string
+	}{
+		{proportion{0, 5000}, proportion{5000, 5000}, 0, 1e-300, "all failures against all successes"},
+		{proportion{5000, 5000}, proportion{0, 5000}, 1 - 1e-15, 1, "all successes against all failures"},
+		{proportion{0, 100}, proportion{0, 1000}, 1, 1, "no success anywhere"},
+		{proportion{500, 1000}, proportion{500, 1000}, 0.5, 0.6, "equal halves"},
+	} {
+		if got := fisherLess(c.p1, c.p2); !(got >= c.lo && got <= c.hi) {
+			t.Errorf("%s: p %g, want in [%g, %g]", c.describe, got, c.lo, c.hi)
+		}
 	}
 }

@@ -344,3 +344,32 @@ func TestUncoveredInstanceResolves(t *testing.T) {
 		t.Fatalf("after: %+v, want resolved with a reason and a summary", in)
 	}
 }
+
+// waitNotified waits until the stored alert key records that notifier was
+// told state.
+func waitNotified(tb testing.TB, st Store, key, notifier string, state State) {
+	tb.Helper()
+	deadline := time.Now().Add(10 * time.Second)
+	for {
+		recs, err := st.Alerts(context.Background())
+		if err != nil {
+			tb.Fatal(err)
+		}
+		for _, rec := range recs {
+			if rec.Key != key {
+				continue
+			}
+			in, err := decodeRecord(rec)
+			if err != nil {
+				tb.Fatal(err)
+			}
+			if in.Notified[notifier].State == state {
+				return
+			}
+		}
+		if time.Now().After(deadline) {
+			tb.Fatalf("alert %s never recorded notifier %s told %s", key, notifier, state)
+		}
+		time.Sleep(10 * time.Millisecond)
+	}
+}

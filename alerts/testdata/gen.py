@@ -20,9 +20,9 @@ Conventions bridged here:
 * Floors and ceilings use the two-sided interval at the rule's confidence
   (statsmodels proportion_confint); a floor fires when the upper bound is
   below it, a ceiling when the lower bound is above it.
-* A drop is the one-sided pooled z-test (statsmodels proportions_ztest,
-  alternative='smaller', current sample first) at level 1 - confidence.
-  A confusion rise is the same with alternative='larger'.
+* A drop without a margin is Fisher's exact test, one-sided
+  (scipy.stats.fisher_exact, alternative='less'), at level 1 - confidence.
+  A confusion rise is the same with alternative='greater'.
 * With a margin, the test is Farrington & Manning's (1990) score test: the
   variance uses the maximum-likelihood proportions restricted to the null
   difference. statsmodels 0.13.5 test_proportions_2indep(method='score',
@@ -46,12 +46,11 @@ import numpy as np
 import scipy
 import statsmodels
 from scipy.optimize import brentq
-from scipy.stats import chi2_contingency, norm
+from scipy.stats import chi2_contingency, fisher_exact, hypergeom, norm
 from statsmodels.stats.multitest import multipletests
 from statsmodels.stats.proportion import (
     confint_proportions_2indep,
     proportion_confint,
-    proportions_ztest,
 )
 
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -105,12 +104,23 @@ def fm_pvalue(x1, n1, x2, n2, value, alternative):
     return float(norm.cdf(z) if alternative == "smaller" else norm.sf(z))
 
 
+def fisher(x1, n1, x2, n2, lower):
+    """One-sided p-value of Fisher's exact test (scipy.stats.fisher_exact),
+    checked against the hypergeometric tail it is (scipy.stats.hypergeom)."""
+    alternative = "less" if lower else "greater"
+    p = fisher_exact([[x1, n1 - x1], [x2, n2 - x2]], alternative=alternative)[1]
+    dist = hypergeom(n1 + n2, x1 + x2, n1)
+    tail = dist.cdf(x1) if lower else dist.sf(x1 - 1)
+    assert math.isclose(p, tail, rel_tol=1e-9), (x1, n1, x2, n2)
+    return float(p)
+
+
 def pvalue(x1, n1, x2, n2, margin, lower):
     """One-sided p-value of 'current worse than reference by more than
     margin'; lower: worse is lower (drop), else higher (confusion rise)."""
-    alternative = "smaller" if lower else "larger"
     if margin == 0:
-        return float(proportions_ztest([x1, x2], [n1, n2], alternative=alternative)[1])
+        return fisher(x1, n1, x2, n2, lower)
+    alternative = "smaller" if lower else "larger"
     return fm_pvalue(x1, n1, x2, n2, -margin if lower else margin, alternative)
 
 
