@@ -16,8 +16,7 @@ import (
 // over a past, bucket-aligned period, optionally as known at an earlier time.
 func runAudit(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("audit", "audit --model M --from T --to T [--as-of T] [--segment S] [--format table|json|csv]", stderr)
-	path := fs.String("config", "", "config `file` (YAML), for the database and the model's bucket")
-	database := fs.String("database", "", "PostgreSQL `URL`, overriding the config and "+databaseURLEnv)
+	sf := addStoreFlags(fs)
 	model := fs.String("model", "", "the `model` to report on (required)")
 	from := fs.String("from", "", "period start, RFC 3339, aligned to the model's bucket (required)")
 	to := fs.String("to", "", "period end (exclusive), RFC 3339, aligned to the bucket (required)")
@@ -57,19 +56,12 @@ func runAudit(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		}
 	})
 
-	cfg, err := loadConfigWithFlags(*path, "", *database)
-	if err != nil {
-		return err
-	}
-	q.Bucket, _ = cfg.modelWindows(*model)
-	st, err := openStore(ctx, cfg)
+	cfg, st, err := sf.open(ctx, false)
 	if err != nil {
 		return err
 	}
 	defer st.Close()
-	if err := st.Ping(ctx); err != nil {
-		return fmt.Errorf("audit: %w", err)
-	}
+	q.Bucket, _ = cfg.modelWindows(*model)
 	rep, err := api.MatrixReport(ctx, st, q, time.Now().UTC(), cfg.Confidence)
 	var reqErr *api.RequestError
 	switch {

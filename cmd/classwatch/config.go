@@ -479,6 +479,26 @@ func (c config) modelWindows(model string) (time.Duration, []windows.Window) {
 	return bucket, out
 }
 
+// allWindows returns every window any model uses, each name once: the
+// top-level list, then models' own windows (names are validated unique per
+// list; a model may reuse a top-level name for a window of its own).
+func (c config) allWindows() []windows.Window {
+	_, out := c.modelWindows("")
+	seen := map[string]bool{}
+	for _, w := range out {
+		seen[w.Name] = true
+	}
+	for _, m := range c.Models {
+		for _, w := range m.Windows {
+			if !seen[w.Name] {
+				seen[w.Name] = true
+				out = append(out, w.window())
+			}
+		}
+	}
+	return out
+}
+
 // trackerOptions maps the configuration onto windows.TrackerOptions. The
 // caller adds Store and Now.
 func (c config) trackerOptions() windows.TrackerOptions {

@@ -18,8 +18,7 @@ import (
 // endpoints judge a body, committed in batches.
 func runIngest(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("ingest", "ingest [--config F] [--database URL] predictions|labels FILE.ndjson", stderr)
-	path := fs.String("config", "", "config `file` (YAML): models, classes, database")
-	database := fs.String("database", "", "PostgreSQL `URL`, overriding the config and "+databaseURLEnv)
+	sf := addStoreFlags(fs)
 	quiet := fs.Bool("quiet", false, "no progress lines")
 	if err := parseFlags(fs, args, 2); err != nil {
 		return err
@@ -29,24 +28,16 @@ func runIngest(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		fs.Usage()
 		return usagef("ingest: first argument must be predictions or labels, not %q", kind)
 	}
-	cfg, err := loadConfigWithFlags(*path, "", *database)
-	if err != nil {
-		return err
-	}
 	f, err := os.Open(file)
 	if err != nil {
 		return fmt.Errorf("ingest: %w", err)
 	}
 	defer f.Close()
-
-	st, err := openStore(ctx, cfg)
+	cfg, st, err := sf.open(ctx, true)
 	if err != nil {
 		return err
 	}
 	defer st.Close()
-	if err := st.Migrate(ctx); err != nil {
-		return fmt.Errorf("migrate: %w", err)
-	}
 	copts := cfg.collectorOptions()
 	copts.Store = st
 	copts.Registerer = prometheus.NewRegistry()

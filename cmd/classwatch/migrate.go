@@ -11,22 +11,16 @@ import (
 // migrate before rolling out.
 func runMigrate(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("migrate", "migrate [--config F] [--database URL]", stderr)
-	path := fs.String("config", "", "config `file` (YAML)")
-	database := fs.String("database", "", "PostgreSQL `URL`, overriding the config and "+databaseURLEnv)
+	sf := addStoreFlags(fs)
 	if err := parseFlags(fs, args, 0); err != nil {
 		return err
 	}
-	cfg, err := loadConfigWithFlags(*path, "", *database)
+	_, st, err := sf.open(ctx, true)
 	if err != nil {
 		return err
 	}
-	st, err := openStore(ctx, cfg)
-	if err != nil {
-		return err
-	}
-	defer st.Close()
-	if err := st.Migrate(ctx); err != nil {
-		return fmt.Errorf("migrate: %w", err)
+	if err := st.Close(); err != nil {
+		return fmt.Errorf("close store: %w", err)
 	}
 	fmt.Fprintln(stdout, "schema is up to date")
 	return nil

@@ -12,23 +12,15 @@ import (
 // non-zero when any is found.
 func runVerify(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("verify", "verify [--config F] [--database URL]", stderr)
-	path := fs.String("config", "", "config `file` (YAML)")
-	database := fs.String("database", "", "PostgreSQL `URL`, overriding the config and "+databaseURLEnv)
+	sf := addStoreFlags(fs)
 	if err := parseFlags(fs, args, 0); err != nil {
 		return err
 	}
-	cfg, err := loadConfigWithFlags(*path, "", *database)
-	if err != nil {
-		return err
-	}
-	st, err := openStore(ctx, cfg)
+	_, st, err := sf.open(ctx, false)
 	if err != nil {
 		return err
 	}
 	defer st.Close()
-	if err := st.Ping(ctx); err != nil {
-		return fmt.Errorf("verify: %w", err)
-	}
 	diffs, err := st.Verify(ctx)
 	if err != nil {
 		return fmt.Errorf("verify: %w", err)
