@@ -96,11 +96,17 @@ type Limits struct {
 	RetryAfter time.Duration
 }
 
-// CommitFunc receives the effects of a committed batch or job, and for a
-// prediction batch each touched model's greatest "at" among the predictions
-// it newly stored. It is called synchronously before the request is
-// answered, possibly from several goroutines at once.
-type CommitFunc func(ch store.Changes, latest map[string]time.Time)
+// CommitFunc runs txFunc, the store transaction of one batch or job, which
+// returns the committed changes and, for a prediction batch, each touched
+// model's greatest "at" among the predictions it newly stored. The hook
+// wraps the transaction so that it can act on both sides of it: the rolling
+// windows (windows.Tracker.Commit) hold their commit gate from before the
+// transaction begins until they have applied its changes. It must call
+// txFunc exactly once and return txFunc's error; when it returns an error
+// the collector answers as if the store had failed. It is called
+// synchronously before the request is answered, possibly from several
+// goroutines at once.
+type CommitFunc func(txFunc func() (store.Changes, map[string]time.Time, error)) error
 
 // RegisterFunc receives a model's full class list when the collector first
 // learns it and each time it grows. It is called with the collector's
@@ -134,7 +140,9 @@ type Options struct {
 	Logger *slog.Logger
 	// Now is the clock for receive times; defaults to time.Now.
 	Now func() time.Time
-	// CommitFunc and RegisterFunc are optional hooks.
+	// CommitFunc and RegisterFunc are optional hooks. Every store
+	// transaction that changes counts (ingest batches, default labels) runs
+	// through CommitFunc.
 	CommitFunc   CommitFunc
 	RegisterFunc RegisterFunc
 }

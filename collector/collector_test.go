@@ -16,6 +16,7 @@ import (
 	"slices"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -134,10 +135,16 @@ func setup(tb testing.TB, be backend, edit func(*collector.Options)) *bundle {
 		Models:     testModels(),
 		Registerer: b.reg,
 		Now:        receiveTime,
-		CommitFunc: func(ch store.Changes, latest map[string]time.Time) {
+		// The hook records the committed transactions that changed counts.
+		CommitFunc: func(txFunc func() (store.Changes, map[string]time.Time, error)) error {
+			ch, latest, err := txFunc()
+			if err != nil || len(ch.Cells)+len(ch.Predicted)+len(latest) == 0 {
+				return err
+			}
 			b.mu.Lock()
 			defer b.mu.Unlock()
 			b.commits = append(b.commits, commit{ch, latest})
+			return nil
 		},
 		RegisterFunc: func(model string, classes []string) {
 			b.mu.Lock()
@@ -615,9 +622,11 @@ func testOverload(t *testing.T, be backend) {
 		o.Limits.MaxInFlight = 1
 		o.Limits.QueueWait = 50 * time.Millisecond
 		o.Limits.RetryAfter = 2 * time.Second
-		o.CommitFunc = func(store.Changes, map[string]time.Time) {
+		o.CommitFunc = func(txFunc func() (store.Changes, map[string]time.Time, error)) error {
+			_, _, err := txFunc()
 			entered <- struct{}{}
 			<-gate
+			return err
 		}
 	})
 	first := make(chan int, 1)
@@ -655,6 +664,51 @@ func testOverload(t *testing.T, be backend) {
 	}
 	if got := testutil.ToFloat64(metric(t, b, "classwatch_collector_in_flight_batches")); got != 0 {
 		t.Errorf("in flight after the batches = %v, want 0", got)
+	}
+}
+
+func TestCommitHookFailure(t *testing.T) { eachStore(t, testCommitHookFailure) }
+
+// testCommitHookFailure checks that a batch is answered 2xx only when the
+// commit hook ran the transaction and returned nil.
+func testCommitHookFailure(t *testing.T, be backend) {
+	const (
+		runs = iota
+		skips
+		refuses
+	)
+	var mode atomic.Int32 // read by the handler's goroutine
+	b := setup(t, be, func(o *collector.Options) {
+		o.CommitFunc = func(txFunc func() (store.Changes, map[string]time.Time, error)) error {
+			switch mode.Load() {
+			case skips:
+				return nil
+			case refuses:
+				return errors.New("windows refused the commit")
+			}
+			_, _, err := txFunc()
+			return err
+		}
+	})
+	for _, c := range []struct {
+		name string
+		mode int32
+	}{
+		{"hook skips the transaction", skips},
+		{"hook fails", refuses},
+	} {
+		mode.Store(c.mode)
+		code, r, h := b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"unsure","predicted":"legit"}`)
+		if code != http.StatusServiceUnavailable || h.Get("Retry-After") == "" || r.Accepted != 0 {
+			t.Errorf("%s: %d %q %+v, want 503 with Retry-After", c.name, code, h.Get("Retry-After"), r)
+		}
+	}
+	if got := b.modelInfo(t, "card-fraud").Predictions; got != 0 {
+		t.Errorf("stored predictions = %d, want 0: no hook ran the transaction", got)
+	}
+	mode.Store(runs)
+	if code, r, _ := b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"unsure","predicted":"legit"}`); code != 200 || r.Accepted != 1 {
+		t.Errorf("with a working hook: %d %+v, want 200 with 1 accepted", code, r)
 	}
 }
 

@@ -47,7 +47,13 @@
 //
 // A batch is answered 2xx only after its transaction committed. Class
 // registration (auto_register) happens before the batch's transaction and
-// stays even if the batch then fails.
+// stays even if the batch then fails. Every transaction that changes counts
+// (a batch, the default labels of Maintain) runs inside Options.CommitFunc,
+// which the daemon sets to the rolling windows' Commit: the windows apply
+// the batch's changes before the hook returns, so they count every commit
+// exactly once even while they refresh from the store. An error from the
+// hook, or a hook that returns without running the transaction, is
+// answered like a store failure (503).
 //
 // # Validation
 //

@@ -327,18 +327,18 @@ func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time
 	if err := c.resolve(ctx, b, run.kind, run.token); err != nil {
 		return &StoreError{FirstLine: b.first, LastLine: b.last, Err: err}
 	}
-	var (
-		changes store.Changes
-		latest  map[string]time.Time
-	)
+	var latest map[string]time.Time
 	endpoint := run.kind.String()
 	if len(b.items) > 0 {
-		var err error
-		if run.kind == labels {
-			changes, err = c.commitLabels(ctx, b, now, res)
-		} else {
-			changes, latest, err = c.commitPredictions(ctx, b, now, res)
-		}
+		err := c.commit(func() (store.Changes, map[string]time.Time, error) {
+			if run.kind == labels {
+				ch, err := c.commitLabels(ctx, b, now, res)
+				return ch, nil, err
+			}
+			ch, stored, err := c.commitPredictions(ctx, b, now, res)
+			latest = stored
+			return ch, stored, err
+		})
 		if err != nil {
 			if ctx.Err() == nil {
 				c.metrics.storeErrors.WithLabelValues("ingest_" + endpoint).Inc()
@@ -362,13 +362,29 @@ func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time
 	c.metrics.batchLines.WithLabelValues(endpoint).Observe(float64(b.lines))
 
 	c.noteLatest(latest)
-	if c.commitFunc != nil && (len(changes.Cells) > 0 || len(changes.Predicted) > 0 || len(latest) > 0) {
-		c.commitFunc(changes, latest)
-	}
 	if run.progress != nil {
 		run.progress(Progress{Line: b.last, Accepted: res.Accepted, Duplicates: res.Duplicates, Rejected: len(res.Rejected)})
 	}
 	return nil
+}
+
+// commit runs txFunc, a store transaction, through the CommitFunc hook
+// when there is one. A hook that returns without running txFunc gets an
+// error: the batch would otherwise be answered as stored.
+func (c *Collector) commit(txFunc func() (store.Changes, map[string]time.Time, error)) error {
+	if c.commitFunc == nil {
+		_, _, err := txFunc()
+		return err
+	}
+	ran := false
+	err := c.commitFunc(func() (store.Changes, map[string]time.Time, error) {
+		ran = true
+		return txFunc()
+	})
+	if err == nil && !ran {
+		return errors.New("commit hook returned without running the transaction")
+	}
+	return err
 }
 
 func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Time, res *Result) (store.Changes, map[string]time.Time, error) {

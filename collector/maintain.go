@@ -7,6 +7,7 @@ import (
 	"time"
 
 	"github.com/classwatch/classwatch/windows"
+	"github.com/classwatch/classwatch/windows/store"
 )
 
 // Maintain runs the join's jobs once, at time now, for every model the
@@ -14,8 +15,8 @@ import (
 // not configured):
 //
 //   - with DefaultLabel and LabelTimeout: predictions unlabeled for
-//     LabelTimeout get the default label, counted as result="implied" and
-//     passed to CommitFunc;
+//     LabelTimeout get the default label, counted as result="implied", in
+//     a transaction run through CommitFunc;
 //   - with EarlyLabelTTL: early labels received EarlyLabelTTL ago whose
 //     prediction never came are dropped, counted as result="expired";
 //   - with Retention: raw predictions in buckets that ended Retention ago
@@ -51,17 +52,17 @@ func (c *Collector) Maintain(ctx context.Context, now time.Time) error {
 func (c *Collector) maintainModel(ctx context.Context, p ModelPolicy, now time.Time) error {
 	var errs []error
 	if p.DefaultLabel != "" && p.LabelTimeout > 0 {
-		n, ch, err := c.store.ApplyLabelTimeout(ctx, p.Name, p.DefaultLabel, p.LabelTimeout, now)
+		var n int64
+		err := c.commit(func() (store.Changes, map[string]time.Time, error) {
+			labeled, ch, err := c.store.ApplyLabelTimeout(ctx, p.Name, p.DefaultLabel, p.LabelTimeout, now)
+			n = labeled
+			return ch, nil, err
+		})
 		if err != nil {
 			c.metrics.storeErrors.WithLabelValues("apply_label_timeout").Inc()
 			errs = append(errs, fmt.Errorf("apply label timeout: %w", err))
-		} else {
-			if n > 0 {
-				c.metrics.labelsReceived.WithLabelValues(p.Name, resultImplied).Add(float64(n))
-			}
-			if c.commitFunc != nil && (len(ch.Cells) > 0 || len(ch.Predicted) > 0) {
-				c.commitFunc(ch, nil)
-			}
+		} else if n > 0 {
+			c.metrics.labelsReceived.WithLabelValues(p.Name, resultImplied).Add(float64(n))
 		}
 	}
 	if p.EarlyLabelTTL > 0 {

@@ -76,22 +76,35 @@ type TrackerOptions struct {
 // ignored. Memory per model is about (n²+n)·8 bytes per non-empty bucket for
 // n classes.
 //
-// # Several replicas
+// # Several replicas, and counting each commit once
 //
 // Each replica sees only its own commits through Apply. Refresh re-reads
-// the reachable buckets and the latest prediction time from the store, so
-// other replicas' commits show after at most one refresh interval. Refresh
-// reads without holding the tracker's lock and swaps the new state in; the
-// changes applied while it read are journaled and replayed onto the new
-// state. A change is replayed when its Apply call came after Refresh marked
-// the journal for its model, just before reading that model's counts: its
-// commit may postdate the read. The one case this gets wrong is a commit
-// the read already sees whose Apply call still comes after the mark (it
-// finished in the instant between the mark and the start of the query, or
-// its Apply had not run yet at the mark): it is counted twice until the
-// next Refresh rebuilds the state. So the figures are exact up to one
-// refresh interval, which is also how stale other replicas' commits can be.
-// An exact scheme would need the store to number its commits.
+// the reachable buckets and the latest prediction time of every model from
+// the store, so other replicas' commits show after at most one refresh
+// interval: that is how stale their share of the figures can be. The
+// replica's own commits are never lost and never counted twice, at any
+// moment, not only once a later Refresh has rebuilt the state.
+//
+// For that Refresh must know which of the replica's commits its read holds.
+// A commit gate tells it: Commit holds the gate's read side from before its
+// store transaction begins until its changes are applied, and Refresh takes
+// the write side, which waits until every commit in flight has been
+// applied and holds new ones back. With the gate closed, Refresh starts a
+// journal of Apply calls and has the store fix one read snapshot
+// (store.Store.Snapshot), then opens the gate. The snapshot therefore
+// holds every commit applied before the journal started and none of those
+// that began after the gate opened, whose Apply calls the journal records.
+// Refresh reads every model from the snapshot without holding the
+// tracker's lock, swaps the new state in and replays the whole journal
+// onto it, so each local commit is counted once: from the snapshot or from
+// the journal.
+//
+// Ingest pays for this only while the gate is closed: a new commit waits
+// for the commits already in flight (batches, default-label jobs) to
+// finish, then for the moment the store takes to fix a snapshot (a BEGIN
+// and one statement). The read itself runs with the gate open. A change passed to Apply directly, not through Commit,
+// bypasses the gate: a Refresh running at the time may count it twice
+// until the next Refresh.
 //
 // A Tracker is safe for concurrent use by multiple goroutines.
 type Tracker struct {
@@ -103,11 +116,15 @@ type Tracker struct {
 
 	// syncMu serialises Load and Refresh, which share the journal.
 	syncMu sync.Mutex
+	// gate orders commits against Refresh's snapshot: Commit holds the read
+	// side across its store transaction and Apply; sync holds the write
+	// side from the start of the journal until the snapshot is fixed.
+	gate sync.RWMutex
 
 	mu     sync.RWMutex
 	models map[string]*modelState
-	// journal holds the changes applied while a Refresh reads, when
-	// recording; nil otherwise.
+	// journal holds the changes applied since a Refresh closed the gate,
+	// when recording; nil otherwise.
 	recording bool
 	journal   []map[string]*modelChanges
 }
@@ -213,11 +230,31 @@ func (t *Tracker) SetClasses(model string, classes []string) {
 	t.state(model).ensureClasses(classes)
 }
 
+// Commit runs txFunc, one store transaction that returns its committed
+// changes and, per model, the greatest prediction time it stored, and then
+// passes them to Apply, all with the commit gate held, so that a concurrent
+// Refresh counts the commit exactly once (see the Tracker documentation).
+// It is the collector's commit hook (collector.CommitFunc). When txFunc
+// fails nothing is applied and its error is returned as it is. txFunc must
+// not call Commit, Load or Refresh.
+func (t *Tracker) Commit(txFunc func() (store.Changes, map[string]time.Time, error)) error {
+	t.gate.RLock()
+	defer t.gate.RUnlock()
+	ch, latest, err := txFunc()
+	if err != nil {
+		return err
+	}
+	t.Apply(ch, latest)
+	return nil
+}
+
 // Apply adds the changes of one committed store call and moves each model's
 // watermark on to cover latest, the greatest prediction time of the call
-// per model. The collector calls it after every commit. A class the model
-// does not have yet is appended to its class list; call SetClasses first to
-// keep the store's class order. Apply copies what it keeps of ch.
+// per model. A class the model does not have yet is appended to its class
+// list; call SetClasses first to keep the store's class order. Apply copies
+// what it keeps of ch. A tracker that is refreshed from a store must get
+// its commits through Commit instead, which calls Apply inside the commit
+// gate.
 func (t *Tracker) Apply(ch store.Changes, latest map[string]time.Time) {
 	byModel := groupChanges(ch, latest)
 	t.mu.Lock()
@@ -275,8 +312,10 @@ func (t *Tracker) Load(ctx context.Context) error {
 
 // Refresh re-reads the reachable buckets from the store so that commits of
 // other replicas sharing the database show in the windows; see the Tracker
-// documentation for how it stays consistent with concurrent Apply calls.
-// Call it every refresh interval, which bounds how stale the figures are.
+// documentation for how it counts concurrent commits exactly once. It holds
+// new commits back only until the store has fixed its read snapshot. Call
+// it every refresh interval, which bounds how stale other replicas'
+// commits are.
 func (t *Tracker) Refresh(ctx context.Context) error {
 	if err := t.sync(ctx); err != nil {
 		return fmt.Errorf("refresh rolling windows: %w", err)
@@ -291,6 +330,14 @@ func (t *Tracker) sync(ctx context.Context) error {
 	t.syncMu.Lock()
 	defer t.syncMu.Unlock()
 
+	// Close the gate: commits in flight finish and are applied, new ones
+	// wait. The journal starts empty, and the gate opens again as soon as
+	// the store has fixed the snapshot, or when sync returns if it never
+	// does.
+	t.gate.Lock()
+	var opened sync.Once
+	open := func() { opened.Do(t.gate.Unlock) }
+	defer open()
 	t.mu.Lock()
 	t.recording, t.journal = true, nil
 	t.mu.Unlock()
@@ -300,38 +347,14 @@ func (t *Tracker) sync(ctx context.Context) error {
 		t.mu.Unlock()
 	}()
 
-	infos, err := t.store.Models(ctx)
+	var fresh map[string]*modelState
+	err := t.store.Snapshot(ctx, open, func(r store.SnapshotReader) error {
+		var err error
+		fresh, err = t.read(ctx, r)
+		return err
+	})
 	if err != nil {
-		return fmt.Errorf("list models: %w", err)
-	}
-	fresh := make(map[string]*modelState, len(infos))
-	marks := make(map[string]int, len(infos))
-	for _, info := range infos {
-		st := newModelState(t.Options(info.Name))
-		st.ensureClasses(info.Classes)
-		st.latest = info.LatestAt
-
-		t.mu.Lock()
-		if live, ok := t.models[info.Name]; ok {
-			st.latest = later(st.latest, live.latest)
-		}
-		// Everything applied before this mark committed before the read
-		// below starts, so the read includes it; later entries are replayed.
-		marks[info.Name] = len(t.journal)
-		t.mu.Unlock()
-
-		// The read starts at the oldest bucket a window reaches at the
-		// watermark the latest known prediction gives; the state is moved
-		// there at once so the swap below never needs an older bucket.
-		if w := t.target(st); !w.IsZero() {
-			counts, err := t.store.Counts(ctx, store.Query{Model: info.Name, From: w.Add(-st.reach), To: time.Unix(readHorizonUnix, 0).UTC()})
-			if err != nil {
-				return fmt.Errorf("read counts of %s: %w", info.Name, err)
-			}
-			st.apply(&modelChanges{cells: cellDeltas(info.Name, counts.Cells), predicted: predictedDeltas(info.Name, counts.Predicted)})
-			st.advance(w)
-		}
-		fresh[info.Name] = st
+		return err
 	}
 
 	t.mu.Lock()
@@ -344,7 +367,9 @@ func (t *Tracker) sync(ctx context.Context) error {
 			st.latest = later(st.latest, live.latest)
 			st.advance(live.wm)
 		}
-		for _, entry := range t.journal[marks[name]:] {
+		// The snapshot holds every commit applied before the journal
+		// started and none of those journaled since.
+		for _, entry := range t.journal {
 			if mc, ok := entry[name]; ok {
 				st.apply(mc)
 			}
@@ -353,6 +378,39 @@ func (t *Tracker) sync(ctx context.Context) error {
 		t.models[name] = st
 	}
 	return nil
+}
+
+// read builds every model's state from the snapshot r.
+func (t *Tracker) read(ctx context.Context, r store.SnapshotReader) (map[string]*modelState, error) {
+	infos, err := r.Models(ctx)
+	if err != nil {
+		return nil, fmt.Errorf("list models: %w", err)
+	}
+	fresh := make(map[string]*modelState, len(infos))
+	for _, info := range infos {
+		st := newModelState(t.Options(info.Name))
+		st.ensureClasses(info.Classes)
+		st.latest = info.LatestAt
+		t.mu.RLock()
+		if live, ok := t.models[info.Name]; ok {
+			st.latest = later(st.latest, live.latest)
+		}
+		t.mu.RUnlock()
+
+		// The read starts at the oldest bucket a window reaches at the
+		// watermark the latest known prediction gives; the state is moved
+		// there at once so the swap never needs an older bucket.
+		if w := t.target(st); !w.IsZero() {
+			counts, err := r.Counts(ctx, store.Query{Model: info.Name, From: w.Add(-st.reach), To: time.Unix(readHorizonUnix, 0).UTC()})
+			if err != nil {
+				return nil, fmt.Errorf("read counts of %s: %w", info.Name, err)
+			}
+			st.apply(&modelChanges{cells: cellDeltas(info.Name, counts.Cells), predicted: predictedDeltas(info.Name, counts.Predicted)})
+			st.advance(w)
+		}
+		fresh[info.Name] = st
+	}
+	return fresh, nil
 }
 
 func cellDeltas(model string, cells []store.Cell) []store.CellDelta {

@@ -37,8 +37,8 @@ func TestTrackerReplicasOnPostgres(t *testing.T) {
 		tr.SetClasses("parcel-sorter", sorterClasses)
 	}
 	for range 25 {
-		tfA.batch(t, trA.Apply)
-		tfB.batch(t, trB.Apply)
+		tfA.batch(t, trA.Commit)
+		tfB.batch(t, trB.Commit)
 	}
 	// Before Refresh, replica A does not know B's traffic.
 	v, _ := trA.View("parcel-sorter", "3h")

@@ -134,7 +134,7 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 	copts.Store = d.store
 	copts.Registerer = reg
 	copts.Logger = log
-	copts.CommitFunc = d.tracker.Apply
+	copts.CommitFunc = d.tracker.Commit
 	copts.RegisterFunc = d.tracker.SetClasses
 	d.collector, err = collector.New(copts)
 	if err != nil {
@@ -161,7 +161,7 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 	if err != nil {
 		return d, fmt.Errorf("notifiers: %w", err)
 	}
-	_, ws := cfg.modelWindows("")
+	ws := cfg.allWindows()
 	d.alerts, err = alerts.New(alerts.Options{
 		Store:        d.store,
 		View:         d.tracker.View,

@@ -290,4 +290,27 @@ type Store interface {
 	// TryLead tries to take the named single-evaluator lock without
 	// waiting. It returns a nil Lease and nil error when another holder has it.
 	TryLead(ctx context.Context, name string) (Lease, error)
+
+	// Snapshot runs readFunc with a SnapshotReader whose reads all come
+	// from one read-only transaction, and so from one snapshot of the
+	// database. The snapshot is fixed before fixedFunc is called: it holds
+	// every commit that completed before Snapshot was called and no commit
+	// that began after fixedFunc was called. A caller that keeps running
+	// sums in step with its own commits (the rolling windows) holds its
+	// commits back until fixedFunc and so knows exactly which of them the
+	// snapshot holds. fixedFunc, when not nil, is called once, on the
+	// calling goroutine, before readFunc, and not at all when the snapshot
+	// cannot be taken. Snapshot returns readFunc's error as it is. The
+	// reader is valid until readFunc returns and is not safe for
+	// concurrent use.
+	Snapshot(ctx context.Context, fixedFunc func(), readFunc func(r SnapshotReader) error) error
+}
+
+// SnapshotReader reads one consistent snapshot of a store; see
+// Store.Snapshot. Its methods mean what Store's methods of the same name
+// mean, at the snapshot. Counts of a model registered after the snapshot
+// was taken either finds nothing or fails with ErrUnknownModel.
+type SnapshotReader interface {
+	Models(ctx context.Context) ([]ModelInfo, error)
+	Counts(ctx context.Context, q Query) (Counts, error)
 }

@@ -61,10 +61,10 @@ func (t *tally) queue(b *pgx.Batch) {
 		}
 		slices.SortFunc(keys, comparePredKey)
 		var (
-			models             []int32
-			buckets, latest    []time.Time
-			segments, classes  []string
-			ns                 []int64
+			models            []int32
+			buckets, latest   []time.Time
+			segments, classes []string
+			ns                []int64
 		)
 		for _, k := range keys {
 			models = append(models, k.model)
@@ -104,7 +104,7 @@ func (t *tally) queue(b *pgx.Batch) {
 }
 
 // write sends the upserts in one round trip.
-func (t *tally) write(ctx context.Context, tx pgx.Tx) error {
+func (t *tally) write(ctx context.Context, tx conn) error {
 	var b pgx.Batch
 	t.queue(&b)
 	if b.Len() == 0 {

@@ -1,8 +1,10 @@
 package pgstore
 
 import (
+	"cmp"
 	"context"
 	"slices"
+	"strings"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -32,13 +34,22 @@ func (v *versionRows) add(model int32, bucket time.Time, pkey int64, implied boo
 	v.actuals = append(v.actuals, actual)
 }
 
-// copy writes the versions.
+// copy writes the versions, in key order so that neighbouring index
+// inserts share pages.
 func (v *versionRows) copy(ctx context.Context, tx conn) error {
 	if len(v.models) == 0 {
 		return nil
 	}
+	order := make([]int, len(v.models))
+	for i := range order {
+		order[i] = i
+	}
+	slices.SortFunc(order, func(x, y int) int {
+		return cmp.Or(cmp.Compare(v.models[x], v.models[y]), cmp.Compare(v.pkeys[x], v.pkeys[y]))
+	})
 	row := make([]any, 6)
-	src := pgx.CopyFromSlice(len(v.models), func(i int) ([]any, error) {
+	src := pgx.CopyFromSlice(len(order), func(i int) ([]any, error) {
+		i = order[i]
 		row[0], row[1], row[2], row[3], row[4], row[5] = v.models[i], v.buckets[i], v.pkeys[i], v.implied[i], v.ats[i], v.actuals[i]
 		return row, nil
 	})
@@ -80,6 +91,7 @@ type labelKey struct {
 
 // target is a known prediction a label batch touches, with its versions.
 type target struct {
+	model              int32
 	pkey               int64
 	bucket             time.Time
 	segment, predicted string
@@ -92,13 +104,13 @@ type target struct {
 // store.Store.
 //
 // Labels live apart from predictions: a label line costs an index lookup of
-// its prediction in predictions, a lookup of the prediction's versions and
-// the insert of the new version into label_versions, whose day partition is
-// the prediction's. Nothing is updated in place. Label batches of one model
-// are serialized by an advisory lock taken first, so the versions read are
-// the ones the batch builds on; the outcome of each line is then decided in
-// memory, in line order, and the writes go as one set-based statement per
-// table.
+// its prediction in predictions, a lookup of the prediction's versions in
+// its day of label_versions and the copy of the new version there. Nothing
+// is updated in place. Label batches of one model are serialized by an
+// advisory lock taken first, so the versions read are the ones the batch
+// builds on; the outcome of each line is then decided in memory, in line
+// order, and the writes go as one COPY and one round trip of set-based
+// statements.
 func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.Time) (store.LabelResult, error) {
 	res := store.LabelResult{Outcomes: make([]store.LabelOutcome, len(batch))}
 	if len(batch) == 0 {
@@ -112,11 +124,39 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 	if err != nil {
 		return res, err
 	}
-	var t *tally
+	// Each distinct (model, id), sorted so that the lookups walk the
+	// primary key in order, and the key of each line.
+	index := make(map[labelKey]int, len(batch))
+	keys := make([]labelKey, 0, len(batch))
+	for _, l := range batch {
+		k := labelKey{ids[l.Model], l.ID}
+		if _, ok := index[k]; !ok {
+			index[k] = 0
+			keys = append(keys, k)
+		}
+	}
+	slices.SortFunc(keys, func(a, b labelKey) int { return cmp.Or(cmp.Compare(a.model, b.model), strings.Compare(a.id, b.id)) })
+	for j, k := range keys {
+		index[k] = j
+	}
+	lineKey := make([]int, len(batch))
+	for i, l := range batch {
+		lineKey[i] = index[labelKey{ids[l.Model], l.ID}]
+	}
+	var (
+		t    *tally
+		days []modelDay // the days the last attempt wrote to
+	)
 	err = s.retry(ctx, func() error {
+		// A day partition dropped by another daemon's purge (only a
+		// prediction that arrived after the purge can be labeled there) fails
+		// an attempt; the retry then recreates it.
+		if err := s.ensureDays(ctx, days); err != nil {
+			return err
+		}
 		t = newTally()
 		return s.inTx(ctx, func(c *pgx.Conn) error {
-			return s.applyLabels(ctx, c, batch, ids, micro(now), res.Outcomes, t)
+			return s.applyLabels(ctx, c, batch, ids, keys, lineKey, micro(now), res.Outcomes, t, &days)
 		})
 	})
 	if err != nil {
@@ -126,54 +166,50 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 	return res, nil
 }
 
-// applyLabels is one attempt at the label transaction.
-func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Label, ids map[string]int32, now time.Time, out []store.LabelOutcome, t *tally) error {
-	var keys []labelKey
-	seen := map[labelKey]bool{}
-	for _, l := range batch {
-		k := labelKey{ids[l.Model], l.ID}
-		if !seen[k] {
-			seen[k] = true
-			keys = append(keys, k)
-		}
+// applyLabels is one attempt at the label transaction: keys are the
+// batch's distinct (model, id) pairs and lineKey the key of each line.
+func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Label, ids map[string]int32,
+	keys []labelKey, lineKey []int, now time.Time, out []store.LabelOutcome, t *tally, days *[]modelDay) error {
+	targets := make([]*target, len(keys))
+	all := make([]int, len(keys))
+	for i := range all {
+		all[i] = i
 	}
 	// The models' label locks, then the lookup, in one round trip.
-	var (
-		b       pgx.Batch
-		targets map[labelKey]*target
-	)
+	var b pgx.Batch
 	b.Queue(sqlBegin)
 	b.Queue(sqlLockModels, s.keys.label, sortedModels(ids))
-	queueFind(&b, keys, &targets)
+	queueFind(&b, keys, all, targets)
 	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
 		return err
 	}
 	var (
-		unknown       []labelKey
+		unknown       []int
 		unknownModels []int32
 	)
-	for _, k := range keys {
-		if targets[k] == nil {
-			unknown = append(unknown, k)
-			unknownModels = append(unknownModels, k.model)
+	for i, tg := range targets {
+		if tg == nil {
+			unknown = append(unknown, i)
+			unknownModels = append(unknownModels, keys[i].model)
 		}
 	}
 	if len(unknown) > 0 {
 		// Early labels: take the models' early-label locks exclusively,
 		// which waits for prediction batches in flight, then look again.
-		if _, err := tx.Exec(ctx, sqlLockModels, s.keys.early, distinctSorted(unknownModels)); err != nil {
-			return err
-		}
-		var (
-			b    pgx.Batch
-			late map[labelKey]*target
-		)
-		queueFind(&b, unknown, &late)
+		var b pgx.Batch
+		b.Queue(sqlLockModels, s.keys.early, distinctSorted(unknownModels))
+		queueFind(&b, keys, unknown, targets)
 		if err := tx.SendBatch(ctx, &b).Close(); err != nil {
 			return err
 		}
-		for k, tg := range late {
-			targets[k] = tg
+	}
+	*days = (*days)[:0]
+	for _, tg := range targets {
+		if tg == nil {
+			continue
+		}
+		if md := (modelDay{tg.model, dayOf(tg.bucket).UnixMicro()}); !slices.Contains(*days, md) {
+			*days = append(*days, md)
 		}
 	}
 	if err := readVersions(ctx, tx, targets); err != nil {
@@ -192,9 +228,9 @@ func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Lab
 		earlyRow = map[earlyKey]int{}
 	)
 	for i, l := range batch {
-		k := labelKey{ids[l.Model], l.ID}
+		k := keys[lineKey[i]]
 		at := micro(l.At)
-		tg := targets[k]
+		tg := targets[lineKey[i]]
 		if tg == nil {
 			ek := earlyKey{k, at, l.Actual}
 			if j, ok := earlyRow[ek]; ok {
@@ -227,13 +263,16 @@ func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Lab
 			out[i] = store.LabelDuplicate
 		}
 	}
-	for k, tg := range targets {
+	for _, tg := range targets {
+		if tg == nil {
+			continue
+		}
 		after, has := current(tg.versions)
 		if tg.had && (!has || after.actual != tg.before.actual) {
-			t.addCell(k.model, tg.bucket, tg.segment, tg.before.actual, tg.predicted, -1)
+			t.addCell(tg.model, tg.bucket, tg.segment, tg.before.actual, tg.predicted, -1)
 		}
 		if has && (!tg.had || after.actual != tg.before.actual) {
-			t.addCell(k.model, tg.bucket, tg.segment, after.actual, tg.predicted, 1)
+			t.addCell(tg.model, tg.bucket, tg.segment, after.actual, tg.predicted, 1)
 		}
 	}
 
@@ -270,76 +309,88 @@ type earlyKey struct {
 	actual string
 }
 
-// queueFind queues the lookup of keys' predictions; out receives the
-// known ones.
-func queueFind(b *pgx.Batch, keys []labelKey, out *map[labelKey]*target) {
-	models := make([]int32, len(keys))
-	idList := make([]string, len(keys))
-	for i, k := range keys {
-		models[i], idList[i] = k.model, k.id
+// queueFind queues the lookup of the predictions of keys[which]; the known
+// ones are stored in targets at their key's index.
+func queueFind(b *pgx.Batch, keys []labelKey, which []int, targets []*target) {
+	models := make([]int32, len(which))
+	idList := make([]string, len(which))
+	for i, j := range which {
+		models[i], idList[i] = keys[j].model, keys[j].id
 	}
 	b.Queue(sqlFindPredictions, models, idList).Query(func(rows pgx.Rows) error {
-		found := make(map[labelKey]*target, len(keys))
 		var (
-			k  labelKey
+			i  int64
 			tg target
 		)
-		_, err := pgx.ForEachRow(rows, []any{&k.model, &k.id, &tg.pkey, &tg.bucket, &tg.segment, &tg.predicted}, func() error {
-			v := tg
-			found[k] = &v
+		_, err := pgx.ForEachRow(rows, []any{&i, &tg.pkey, &tg.bucket, &tg.segment, &tg.predicted}, func() error {
+			j := which[i-1]
+			found := tg
+			found.model = keys[j].model
+			targets[j] = &found
 			return nil
 		})
-		*out = found
 		return err
 	})
 }
 
-// readVersions loads the label versions of targets and their current label.
-func readVersions(ctx context.Context, tx conn, targets map[labelKey]*target) error {
-	if len(targets) == 0 {
+// readVersions loads the label versions of the known targets and their
+// current label. It reads each day apart: bounded to one day, a lookup is
+// planned against that day's partition alone, with no per-row partition
+// pruning, and all days go in one round trip.
+func readVersions(ctx context.Context, tx conn, targets []*target) error {
+	type dayLookup struct {
+		models  []int32
+		buckets []time.Time
+		pkeys   []int64
+		tgs     []*target
+	}
+	days := map[int64]*dayLookup{}
+	for _, tg := range targets {
+		if tg == nil {
+			continue
+		}
+		k := dayOf(tg.bucket).UnixMicro()
+		d := days[k]
+		if d == nil {
+			d = &dayLookup{}
+			days[k] = d
+		}
+		d.models = append(d.models, tg.model)
+		d.buckets = append(d.buckets, tg.bucket)
+		d.pkeys = append(d.pkeys, tg.pkey)
+		d.tgs = append(d.tgs, tg)
+	}
+	if len(days) == 0 {
 		return nil
 	}
-	type pk struct {
-		model int32
-		pkey  int64
-	}
-	var (
-		models   []int32
-		buckets  []time.Time
-		pkeys    []int64
-		min, max time.Time
-		byKey    = make(map[pk]*target, len(targets))
-	)
-	for k, tg := range targets {
-		models = append(models, k.model)
-		buckets = append(buckets, tg.bucket)
-		pkeys = append(pkeys, tg.pkey)
-		if min.IsZero() || tg.bucket.Before(min) {
-			min = tg.bucket
+	var b pgx.Batch
+	for k, d := range days {
+		// Probe in key order, so neighbouring probes share index pages.
+		slices.SortFunc(d.tgs, func(x, y *target) int { return cmp.Or(cmp.Compare(x.model, y.model), cmp.Compare(x.pkey, y.pkey)) })
+		for i, tg := range d.tgs {
+			d.models[i], d.buckets[i], d.pkeys[i] = tg.model, tg.bucket, tg.pkey
 		}
-		if tg.bucket.After(max) {
-			max = tg.bucket
-		}
-		byKey[pk{k.model, tg.pkey}] = tg
+		start := time.UnixMicro(k).UTC()
+		b.Queue(sqlFindVersions, d.models, d.buckets, d.pkeys, start, start.Add(day)).Query(func(rows pgx.Rows) error {
+			var (
+				i int64
+				v version
+			)
+			_, err := pgx.ForEachRow(rows, []any{&i, &v.implied, &v.at, &v.actual}, func() error {
+				tg := d.tgs[i-1]
+				tg.versions = append(tg.versions, v)
+				return nil
+			})
+			return err
+		})
 	}
-	rows, err := tx.Query(ctx, sqlFindVersions, models, buckets, pkeys, min, max)
-	if err != nil {
-		return err
-	}
-	var (
-		k pk
-		v version
-	)
-	_, err = pgx.ForEachRow(rows, []any{&k.model, &k.pkey, &v.implied, &v.at, &v.actual}, func() error {
-		tg := byKey[k]
-		tg.versions = append(tg.versions, v)
-		return nil
-	})
-	if err != nil {
+	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
 		return err
 	}
 	for _, tg := range targets {
-		tg.before, tg.had = current(tg.versions)
+		if tg != nil {
+			tg.before, tg.had = current(tg.versions)
+		}
 	}
 	return nil
 }
@@ -354,11 +405,18 @@ func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, time
 		return 0, store.Changes{}, err
 	}
 	due := micro(now.Add(-timeout))
+	if err := s.summarize(ctx); err != nil {
+		return 0, store.Changes{}, err
+	}
 	var (
-		n int64
-		t *tally
+		n    int64
+		t    *tally
+		days []modelDay
 	)
 	err = s.retry(ctx, func() error {
+		if err := s.ensureDays(ctx, days); err != nil {
+			return err
+		}
 		n, t = 0, newTally()
 		return pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
 			if _, err := tx.Exec(ctx, sqlLockModels, s.keys.label, []int32{id}); err != nil {
@@ -376,8 +434,11 @@ func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, time
 			if err != nil || len(buckets) == 0 {
 				return err
 			}
-			if _, err := tx.Exec(ctx, sqlSummarize); err != nil {
-				return err
+			days = days[:0]
+			for _, b := range buckets {
+				if md := (modelDay{id, dayOf(b).UnixMicro()}); !slices.Contains(days, md) {
+					days = append(days, md)
+				}
 			}
 			rows, err = tx.Query(ctx, sqlApplyTimeout, id, buckets, buckets[0], buckets[len(buckets)-1], due, timeout, label)
 			if err != nil {

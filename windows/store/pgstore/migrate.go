@@ -73,4 +73,3 @@ func (s *Store) Migrate(ctx context.Context) (err error) {
 	}
 	return nil
 }
-

@@ -30,7 +30,6 @@ type predLine struct {
 	at     time.Time
 	bucket time.Time
 	p      *store.Prediction
-	scores []byte // JSON, nil if none
 	pkey   int64
 
 	// Set per attempt.
@@ -74,9 +73,7 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 	if err != nil {
 		return res, err
 	}
-	tp := time.Now()
 	lines, repeats, err := predLines(batch, ids)
-	println("T prep", time.Since(tp).Microseconds())
 	if err != nil {
 		return res, err
 	}
@@ -125,7 +122,6 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 		}
 	}
 	res.Changes = t.changes(namesOf(ids))
-	println("T all", time.Since(tp).Microseconds())
 	return res, nil
 }
 
@@ -146,39 +142,39 @@ func predLines(batch []store.Prediction, ids map[string]int32) ([]predLine, map[
 			repeats[i] = j
 			continue
 		}
-		scores, err := encodeScores(p.Scores)
-		if err != nil {
+		if err := checkScores(p.Scores); err != nil {
 			return nil, nil, fmt.Errorf("prediction line %d: %w", i+1, err)
 		}
 		first[k] = len(lines)
 		lines = append(lines, predLine{
-			line: i, model: k.model, id: p.ID, at: micro(p.At), bucket: micro(p.Bucket),
-			p: p, scores: scores,
+			line: i, model: k.model, id: p.ID, at: micro(p.At), bucket: micro(p.Bucket), p: p,
 		})
 	}
 	return lines, repeats, nil
 }
 
-// encodeScores returns scores as a JSON object, nil for none. It writes the
-// JSON itself, in one allocation, because it runs for every line of every
-// batch: keys in sorted order, numbers in Go's shortest form that reads
-// back exactly (PostgreSQL keeps jsonb numbers as exact decimals, so the
-// stored value is the float sent).
-func encodeScores(scores map[string]float64) ([]byte, error) {
-	if len(scores) == 0 {
-		return nil, nil
-	}
-	keys := make([]string, 0, len(scores))
-	size := 2
+// checkScores refuses scores that JSON cannot carry.
+func checkScores(scores map[string]float64) error {
 	for k, v := range scores {
 		if math.IsNaN(v) || math.IsInf(v, 0) {
-			return nil, fmt.Errorf("score %q is %v: %w", k, v, errBadInput)
+			return fmt.Errorf("score %q is %v: %w", k, v, errBadInput)
 		}
+	}
+	return nil
+}
+
+// appendScores appends checked scores to b as a JSON object: keys in
+// sorted order, numbers in Go's shortest form that reads back exactly
+// (PostgreSQL keeps jsonb numbers as exact decimals, so the stored value is
+// the float sent). It writes the JSON itself, into a reused buffer, because
+// it runs for every line of every batch.
+func appendScores(b []byte, scores map[string]float64) []byte {
+	var small [8]string
+	keys := small[:0]
+	for k := range scores {
 		keys = append(keys, k)
-		size += len(k) + 28
 	}
 	slices.Sort(keys)
-	b := make([]byte, 0, size)
 	b = append(b, '{')
 	for i, k := range keys {
 		if i > 0 {
@@ -189,16 +185,13 @@ func encodeScores(scores map[string]float64) ([]byte, error) {
 			b = append(b, k...)
 			b = append(b, '"')
 		} else {
-			q, err := json.Marshal(k)
-			if err != nil {
-				return nil, fmt.Errorf("encode score name: %w: %w", errBadInput, err)
-			}
+			q, _ := json.Marshal(k) // a string always encodes
 			b = append(b, q...)
 		}
 		b = append(b, ':')
 		b = strconv.AppendFloat(b, scores[k], 'g', -1, 64)
 	}
-	return append(b, '}'), nil
+	return append(b, '}')
 }
 
 // plainKey reports whether k needs no escaping inside a JSON string.
@@ -213,7 +206,6 @@ func plainKey(k string) bool {
 
 // storePredictions is one attempt at the prediction transaction.
 func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []predLine, models []int32, t *tally) error {
-	t0 := time.Now()
 	for i := range lines {
 		lines[i].stored, lines[i].old = false, nil
 	}
@@ -242,8 +234,6 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 		lines[i].pkey = starts[i/keyBlock]*keyBlock + int64(i%keyBlock)
 	}
 
-	println("T batch1", time.Since(t0).Microseconds())
-	t0 = time.Now()
 	fresh := make([]*predLine, len(lines))
 	for i := range lines {
 		fresh[i] = &lines[i]
@@ -264,8 +254,6 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 	if err != nil {
 		return err
 	}
-	println("T copy", time.Since(t0).Microseconds())
-	t0 = time.Now()
 	if len(fresh) == 0 {
 		_, err := tx.Exec(ctx, sqlCommit)
 		return err
@@ -286,23 +274,24 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 	b = pgx.Batch{}
 	t.queue(&b)
 	b.Queue(sqlCommit)
-	err = tx.SendBatch(ctx, &b).Close()
-	println("T final", time.Since(t0).Microseconds())
-	return err
+	return tx.SendBatch(ctx, &b).Close()
 }
 
-// copyPredictions copies lines into predictions.
+// copyPredictions copies lines into predictions. The rows are encoded as
+// pgx streams them, so that this work overlaps the server's.
 func copyPredictions(ctx context.Context, tx conn, lines []*predLine) error {
 	if len(lines) == 0 {
 		return nil
 	}
 	row := make([]any, 8)
+	var scores []byte // pgx copies each row's values out before asking for the next
 	src := pgx.CopyFromSlice(len(lines), func(i int) ([]any, error) {
 		l := lines[i]
 		row[0], row[1], row[2], row[3] = l.pkey, l.bucket, l.at, l.model
 		row[4], row[5], row[6], row[7] = l.id, l.p.Segment, l.p.Predicted, nil
-		if l.scores != nil {
-			row[7] = l.scores
+		if len(l.p.Scores) > 0 {
+			scores = appendScores(scores[:0], l.p.Scores)
+			row[7] = scores
 		}
 		return row, nil
 	})

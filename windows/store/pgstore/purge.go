@@ -27,6 +27,9 @@ func (s *Store) PurgeRaw(ctx context.Context, model string, cutoff time.Time) (i
 		return 0, err
 	}
 	cutoff = micro(cutoff)
+	if err := s.summarize(ctx); err != nil {
+		return 0, err
+	}
 	var (
 		n      int64
 		forgot []modelDay
@@ -40,9 +43,6 @@ func (s *Store) PurgeRaw(ctx context.Context, model string, cutoff time.Time) (i
 				return err
 			}
 			if _, err := tx.Exec(ctx, sqlMarkPurged, id, cutoff); err != nil {
-				return err
-			}
-			if _, err := tx.Exec(ctx, sqlSummarize); err != nil {
 				return err
 			}
 			tag, err := tx.Exec(ctx, sqlPurgePreds, id, cutoff)

@@ -89,19 +89,19 @@ RETURNING e.model_id, e.id, e.at, e.actual`
 const (
 	// sqlFindPredictions returns the join keys of the known predictions
 	// among the given (model, id) pairs.
-	sqlFindPredictions = `SELECT u.m, u.id, p.pkey, p.bucket, p.segment, p.predicted
-FROM unnest($1::int[], $2::text[]) AS u(m, id)
+	sqlFindPredictions = `SELECT u.i, p.pkey, p.bucket, p.segment, p.predicted
+FROM unnest($1::int[], $2::text[]) WITH ORDINALITY AS u(m, id, i)
 JOIN predictions p ON p.model_id = u.m AND p.id = u.id`
-	// sqlFindVersions returns every label version of the given predictions;
-	// $4 and $5 bound their buckets so that planning prunes label_versions
-	// to the days concerned. The OFFSET 0 subquery keeps the planner from
-	// hashing whole day partitions, which it may choose on stale
-	// statistics: each prediction is one index probe.
-	sqlFindVersions = `SELECT u.m, u.k, v.implied, v.at, v.actual
-FROM unnest($1::int[], $2::timestamptz[], $3::bigint[]) AS u(m, b, k)
+	// sqlFindVersions returns every label version of the given predictions
+	// of one day, [$4, $5): planning prunes label_versions to that day's
+	// partition. The OFFSET 0 subquery keeps the planner from hashing the
+	// whole partition, which it may choose on stale statistics: each
+	// prediction is one index probe.
+	sqlFindVersions = `SELECT u.i, v.implied, v.at, v.actual
+FROM unnest($1::int[], $2::timestamptz[], $3::bigint[]) WITH ORDINALITY AS u(m, b, k, i)
 CROSS JOIN LATERAL (
     SELECT implied, at, actual FROM label_versions
-    WHERE model_id = u.m AND bucket = u.b AND pkey = u.k AND bucket >= $4 AND bucket <= $5 OFFSET 0
+    WHERE model_id = u.m AND pkey = u.k AND bucket = u.b AND bucket >= $4 AND bucket < $5 OFFSET 0
 ) v`
 	// sqlAddEarly holds early labels and returns the versions that were new.
 	sqlAddEarly = `INSERT INTO early_labels (model_id, id, at, actual, received_at)

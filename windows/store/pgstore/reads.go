@@ -98,9 +98,18 @@ func (s *Store) classes(ctx context.Context, q querier, id int32) ([]string, err
 // latest prediction time seen, and the stored (not purged) predictions and
 // labeled ones, summed from the maintained counts.
 func (s *Store) Models(ctx context.Context) ([]store.ModelInfo, error) {
-	rows, err := s.pool.Query(ctx, sqlModels)
+	out, err := readModels(ctx, s.pool)
 	if err != nil {
 		return nil, unavailable("read models", err)
+	}
+	return out, nil
+}
+
+// readModels runs Models' query on q.
+func readModels(ctx context.Context, q querier) ([]store.ModelInfo, error) {
+	rows, err := q.Query(ctx, sqlModels)
+	if err != nil {
+		return nil, err
 	}
 	var (
 		out    []store.ModelInfo
@@ -118,7 +127,7 @@ func (s *Store) Models(ctx context.Context) ([]store.ModelInfo, error) {
 		return nil
 	})
 	if err != nil {
-		return nil, unavailable("read models", err)
+		return nil, err
 	}
 	return out, nil
 }
@@ -148,31 +157,40 @@ func (s *Store) CountsAsOf(ctx context.Context, q store.Query, asOf time.Time) (
 func (s *Store) readCounts(ctx context.Context, cellsQuery, predictedQuery string, args ...any) (store.Counts, error) {
 	var out store.Counts
 	err := pgx.BeginTxFunc(ctx, s.pool, pgx.TxOptions{IsoLevel: pgx.RepeatableRead, AccessMode: pgx.ReadOnly}, func(tx pgx.Tx) error {
-		out = store.Counts{}
-		rows, err := tx.Query(ctx, cellsQuery, args...)
-		if err != nil {
-			return err
-		}
-		var c store.Cell
-		if _, err := pgx.ForEachRow(rows, []any{&c.Bucket, &c.Actual, &c.Predicted, &c.N}, func() error {
-			out.Cells = append(out.Cells, c)
-			return nil
-		}); err != nil {
-			return err
-		}
-		rows, err = tx.Query(ctx, predictedQuery, args...)
-		if err != nil {
-			return err
-		}
-		var p store.PredictedCount
-		_, err = pgx.ForEachRow(rows, []any{&p.Bucket, &p.Predicted, &p.N}, func() error {
-			out.Predicted = append(out.Predicted, p)
-			return nil
-		})
+		var err error
+		out, err = countsIn(ctx, tx, cellsQuery, predictedQuery, args...)
 		return err
 	})
 	if err != nil {
 		return store.Counts{}, unavailable("read counts", err)
+	}
+	return out, nil
+}
+
+// countsIn runs a cells query and a predicted-count query on tx.
+func countsIn(ctx context.Context, tx querier, cellsQuery, predictedQuery string, args ...any) (store.Counts, error) {
+	var out store.Counts
+	rows, err := tx.Query(ctx, cellsQuery, args...)
+	if err != nil {
+		return store.Counts{}, err
+	}
+	var c store.Cell
+	if _, err := pgx.ForEachRow(rows, []any{&c.Bucket, &c.Actual, &c.Predicted, &c.N}, func() error {
+		out.Cells = append(out.Cells, c)
+		return nil
+	}); err != nil {
+		return store.Counts{}, err
+	}
+	rows, err = tx.Query(ctx, predictedQuery, args...)
+	if err != nil {
+		return store.Counts{}, err
+	}
+	var p store.PredictedCount
+	if _, err := pgx.ForEachRow(rows, []any{&p.Bucket, &p.Predicted, &p.N}, func() error {
+		out.Predicted = append(out.Predicted, p)
+		return nil
+	}); err != nil {
+		return store.Counts{}, err
 	}
 	return out, nil
 }

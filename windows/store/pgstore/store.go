@@ -258,6 +258,19 @@ func (s *Store) inTx(ctx context.Context, fn func(c *pgx.Conn) error) error {
 	return err
 }
 
+// summarize brings the BRIN index of predictions up to date, so the bucket
+// ranges PurgeRaw and ApplyLabelTimeout read skip the blocks of other
+// buckets; autovacuum does it too, when it runs. It is an optimization: a
+// role that may not summarize (42501) is not an error.
+func (s *Store) summarize(ctx context.Context) error {
+	_, err := s.pool.Exec(ctx, sqlSummarize)
+	var pgErr *pgconn.PgError
+	if err == nil || (errors.As(err, &pgErr) && pgErr.Code == "42501") {
+		return nil
+	}
+	return unavailable("summarize bucket index", err)
+}
+
 // modelIDs resolves model names to ids, from the cache or the database. An
 // unregistered model gives store.ErrUnknownModel.
 func (s *Store) modelIDs(ctx context.Context, names []string) (map[string]int32, error) {

@@ -120,9 +120,14 @@ func each(ctx context.Context, q queryer, query string, args []any, scan func(*s
 // Models lists the registered models by name with their classes and
 // maintained totals.
 func (s *Store) Models(ctx context.Context) ([]store.ModelInfo, error) {
+	return readModels(ctx, s.read)
+}
+
+// readModels runs Models' queries on q.
+func readModels(ctx context.Context, q queryer) ([]store.ModelInfo, error) {
 	var out []store.ModelInfo
 	index := map[int64]int{}
-	err := each(ctx, s.read, sqlModels, nil, func(r *sql.Rows) error {
+	err := each(ctx, q, sqlModels, nil, func(r *sql.Rows) error {
 		var (
 			id     int64
 			m      store.ModelInfo
@@ -143,7 +148,7 @@ func (s *Store) Models(ctx context.Context) ([]store.ModelInfo, error) {
 	}
 	// Classes are read after models: a model registered in between has no
 	// entry in index and is skipped, so the listing stays consistent.
-	err = each(ctx, s.read, sqlAllClasses, nil, func(r *sql.Rows) error {
+	err = each(ctx, q, sqlAllClasses, nil, func(r *sql.Rows) error {
 		var (
 			id   int64
 			name string
@@ -192,8 +197,14 @@ func (s *Store) readCounts(ctx context.Context, cellsQuery, predictedQuery strin
 		return store.Counts{}, unavailable("begin read", err)
 	}
 	defer tx.Rollback()
+	return countsIn(ctx, tx, cellsQuery, predictedQuery, args)
+}
+
+// countsIn runs a cells query and a predicted-count query on q, which must
+// be a read transaction for the two to see the same snapshot.
+func countsIn(ctx context.Context, q queryer, cellsQuery, predictedQuery string, args []any) (store.Counts, error) {
 	var out store.Counts
-	err = each(ctx, tx, cellsQuery, args, func(r *sql.Rows) error {
+	err := each(ctx, q, cellsQuery, args, func(r *sql.Rows) error {
 		var (
 			c      store.Cell
 			bucket int64
@@ -208,7 +219,7 @@ func (s *Store) readCounts(ctx context.Context, cellsQuery, predictedQuery strin
 	if err != nil {
 		return store.Counts{}, unavailable("read cells", err)
 	}
-	err = each(ctx, tx, predictedQuery, args, func(r *sql.Rows) error {
+	err = each(ctx, q, predictedQuery, args, func(r *sql.Rows) error {
 		var (
 			p      store.PredictedCount
 			bucket int64

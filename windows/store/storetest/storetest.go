@@ -57,6 +57,7 @@ func Exercise(t *testing.T, newStore func(t *testing.T) store.Store) {
 	t.Run("PurgeRaw", func(t *testing.T) { testPurgeRaw(t, newStore(t)) })
 	t.Run("Alerts", func(t *testing.T) { testAlerts(t, newStore(t)) })
 	t.Run("TryLead", func(t *testing.T) { testTryLead(t, newStore(t)) })
+	t.Run("Snapshot", func(t *testing.T) { testSnapshot(t, newStore(t)) })
 	t.Run("ConcurrentIngest", func(t *testing.T) { testConcurrentIngest(t, newStore(t)) })
 	t.Run("ConcurrentJoin", func(t *testing.T) { testConcurrentJoin(t, newStore(t)) })
 	t.Run("OrderIndependence", func(t *testing.T) { testOrderIndependence(t, newStore) })
