@@ -152,12 +152,30 @@ func isDecimalDigits(s string) bool {
 	return true
 }
 
-// FormatDuration prints d in a form ParseDuration reads back: whole days
-// when d is a positive multiple of 24 hours ("7d"), else Go's form
-// ("36h0m0s", "5m0s").
+// FormatDuration prints d in the short form people write and
+// ParseDuration reads back: whole days first ("7d", "1d12h"), then Go's
+// units without trailing zero units ("1h", "1h30m", "5m", "90s"); a
+// duration under a second or negative keeps Go's form.
 func FormatDuration(d time.Duration) string {
-	if d > 0 && d%(24*time.Hour) == 0 {
-		return strconv.FormatInt(int64(d/(24*time.Hour)), 10) + "d"
+	if d <= 0 || d%time.Second != 0 {
+		return d.String()
 	}
-	return d.String()
+	const day = 24 * time.Hour
+	var b strings.Builder
+	if days := d / day; days > 0 {
+		b.WriteString(strconv.FormatInt(int64(days), 10))
+		b.WriteByte('d')
+		d -= days * day
+	}
+	for _, u := range []struct {
+		unit time.Duration
+		name byte
+	}{{time.Hour, 'h'}, {time.Minute, 'm'}, {time.Second, 's'}} {
+		if n := d / u.unit; n > 0 {
+			b.WriteString(strconv.FormatInt(int64(n), 10))
+			b.WriteByte(u.name)
+			d -= n * u.unit
+		}
+	}
+	return b.String()
 }

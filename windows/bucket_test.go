@@ -162,10 +162,10 @@ func TestWindowValidate(t *testing.T) {
 		{Window{Length: time.Hour}, b, "needs a name"},
 		{Window{Name: "w", Length: time.Hour}, 0, "bucket must be positive"},
 		{Window{Name: "w"}, b, "length must be positive"},
-		{Window{Name: "w", Length: 7 * time.Minute}, b, "not a multiple of the bucket 5m0s"},
+		{Window{Name: "w", Length: 7 * time.Minute}, b, "not a multiple of the bucket 5m"},
 		{Window{Name: "w", Length: time.Hour, Lag: -b}, b, "lag must not be negative"},
-		{Window{Name: "w", Length: time.Hour, Lag: time.Minute}, b, "lag 1m0s is not a multiple"},
-		{Window{Name: "w", Length: 36 * time.Hour}, 24 * time.Hour, "length 36h0m0s is not a multiple of the bucket 1d"},
+		{Window{Name: "w", Length: time.Hour, Lag: time.Minute}, b, "lag 1m is not a multiple"},
+		{Window{Name: "w", Length: 36 * time.Hour}, 24 * time.Hour, "length 1d12h is not a multiple of the bucket 1d"},
 	} {
 		err := c.win.Validate(c.bucket)
 		switch {
@@ -229,8 +229,11 @@ func TestFormatDuration(t *testing.T) {
 	}{
 		{7 * 24 * time.Hour, "7d"},
 		{24 * time.Hour, "1d"},
-		{36 * time.Hour, "36h0m0s"},
-		{5 * time.Minute, "5m0s"},
+		{36 * time.Hour, "1d12h"},
+		{5 * time.Minute, "5m"},
+		{time.Hour + 30*time.Minute + 5*time.Second, "1h30m5s"},
+		{8*24*time.Hour + time.Minute, "8d1m"},
+		{1500 * time.Millisecond, "1.5s"},
 		{0, "0s"},
 		{-48 * time.Hour, "-48h0m0s"},
 	} {

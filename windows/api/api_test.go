@@ -134,7 +134,7 @@ func TestMatrixRejectsBadQueries(t *testing.T) {
 		want   []string // fragments of the error message
 	}{
 		{"from misaligned", url.Values{"from": {"2026-03-01T12:03:00Z"}, "to": {rfc(at(60))}},
-			[]string{"from 2026-03-01T12:03:00Z is not aligned", "5m0s buckets", "2026-03-01T12:00:00Z or 2026-03-01T12:05:00Z"}},
+			[]string{"from 2026-03-01T12:03:00Z is not aligned", "5m buckets", "2026-03-01T12:00:00Z or 2026-03-01T12:05:00Z"}},
 		{"to misaligned", url.Values{"from": {rfc(t0)}, "to": {"2026-03-01T13:00:30Z"}},
 			[]string{"to 2026-03-01T13:00:30Z is not aligned"}},
 		{"to before from", url.Values{"from": {rfc(at(60))}, "to": {rfc(t0)}}, []string{"must be after from"}},
@@ -424,7 +424,7 @@ func TestWindowsAndModels(t *testing.T) {
 	if m.Name != "card-screen" || !slices.Equal(m.Classes, cardClasses) || m.Predictions != 3 || m.Labeled != 2 {
 		t.Errorf("model %+v", m)
 	}
-	if m.Watermark == nil || !m.Watermark.Equal(at(60)) || len(m.Windows) != 2 || m.Bucket != "5m0s" {
+	if m.Watermark == nil || !m.Watermark.Equal(at(60)) || len(m.Windows) != 2 || m.Bucket != "5m" {
 		t.Errorf("model watermark %v, windows %v, bucket %s", m.Watermark, m.Windows, m.Bucket)
 	}
 }
