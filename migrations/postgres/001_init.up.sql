@@ -64,8 +64,8 @@ CREATE INDEX predictions_bucket ON predictions USING brin (bucket) WITH (pages_p
 -- append-only. Versions are judged new before they are written (label
 -- batches of a model hold its advisory lock and read the versions they
 -- build on), so the table needs no unique key, only the index that finds a
--- prediction's versions: eight bytes of pkey instead of a six-column key
--- keeps each insert and lookup cheap.
+-- prediction's versions: twelve bytes of (model_id, pkey) instead of a
+-- six-column key keep each insert and lookup cheap.
 CREATE TABLE label_versions (
     bucket   timestamptz NOT NULL,
     pkey     bigint      NOT NULL,

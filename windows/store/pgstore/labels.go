@@ -178,6 +178,8 @@ func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Lab
 	// The models' label locks, then the lookup, in one round trip.
 	var b pgx.Batch
 	b.Queue(sqlBegin)
+	b.Queue(sqlNoHashJoin)
+	b.Queue(sqlNoMergeJoin)
 	b.Queue(sqlLockModels, s.keys.label, sortedModels(ids))
 	queueFind(&b, keys, all, targets)
 	if err := tx.SendBatch(ctx, &b).Close(); err != nil {

@@ -27,8 +27,11 @@ import (
 //	CLASSWATCH_LOADTEST=1 CLASSWATCH_TEST_DATABASE_URL=postgres://... \
 //	    go test -run TestLoadHarness -v -timeout 30m ./windows/store/pgstore/
 //
-// CLASSWATCH_LOADTEST_N lists the sizes (default "1000000,5000000"). For
-// each size N, in a fresh schema, it reports rows per second of
+// CLASSWATCH_LOADTEST_N lists the sizes (default "1000000,5000000") and
+// CLASSWATCH_LOADTEST_SPAN the stretch of prediction times (default 72h,
+// whatever N: a larger N is then also a higher rate, and so a larger set of
+// recent predictions that labels reach into). For each size N, in a fresh
+// schema, it reports rows per second of
 //
 //	(a) raw COPY of N predictions into a bare table with the same columns
 //	    (no key, no index), in transactions of loadBatch rows: the cost of
@@ -59,13 +62,24 @@ func TestLoadHarness(t *testing.T) {
 			sizes = append(sizes, n)
 		}
 	}
+	span := 72 * time.Hour
+	if v := os.Getenv("CLASSWATCH_LOADTEST_SPAN"); v != "" {
+		var err error
+		if span, err = time.ParseDuration(v); err != nil || span <= 0 {
+			t.Fatalf("CLASSWATCH_LOADTEST_SPAN: bad duration %q", v)
+		}
+	}
 	for _, n := range sizes {
-		t.Run(fmt.Sprintf("N=%d", n), func(t *testing.T) { runLoad(t, n) })
+		t.Run(fmt.Sprintf("N=%d", n), func(t *testing.T) { runLoad(t, n, span) })
 	}
 }
 
 // loadBatch is the batch size of every phase.
 const loadBatch = 5000
+
+// meanLabelDelay is the mean of the exponential delay between a
+// prediction's time and its label's arrival.
+const meanLabelDelay = 2 * time.Hour
 
 // loadData generates the harness's predictions and labels from their index:
 // a fictional bank's card-fraud screen, three days of traffic.
@@ -97,11 +111,11 @@ func (d loadData) label(i int) store.Label {
 	if rng.IntN(10) == 0 {
 		actual = map[string]string{"legit": "fraud", "fraud": "legit"}[actual]
 	}
-	delay := time.Duration(rng.ExpFloat64() * float64(2*time.Hour))
+	delay := time.Duration(rng.ExpFloat64() * float64(meanLabelDelay))
 	return store.Label{Model: p.Model, ID: p.ID, Actual: actual, At: p.At.Add(delay).Truncate(time.Microsecond)}
 }
 
-func runLoad(t *testing.T, n int) {
+func runLoad(t *testing.T, n int, span time.Duration) {
 	ctx := context.Background()
 	url := pgtest.URL(t)
 	s, err := Open(ctx, url, Options{})
@@ -115,7 +129,8 @@ func runLoad(t *testing.T, n int) {
 	if _, err := s.EnsureModel(ctx, "card-fraud", []string{"legit", "fraud"}, 0); err != nil {
 		t.Fatal(err)
 	}
-	d := loadData{n: n, start: time.Date(2026, 3, 2, 0, 0, 0, 0, time.UTC), span: 72 * time.Hour}
+	d := loadData{n: n, start: time.Date(2026, 3, 2, 0, 0, 0, 0, time.UTC), span: span}
+	t.Logf("%d predictions over %v (%.0f per hour), labels %v late on average", n, span, float64(n)/span.Hours(), meanLabelDelay)
 	var settings []string
 	for _, name := range []string{"server_version", "shared_buffers", "synchronous_commit", "fsync", "full_page_writes", "max_wal_size"} {
 		var v string

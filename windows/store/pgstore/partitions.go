@@ -9,14 +9,11 @@ import (
 	"github.com/jackc/pgx/v5"
 )
 
-// day is the width of a raw-table partition. Partitions are UTC days of
-// the prediction's bucket start.
+// day is the width of a label_versions partition: the UTC day of the
+// prediction's bucket start.
 const day = 24 * time.Hour
 
-// partitioned lists the tables range-partitioned by bucket into days.
-var partitioned = [...]string{"label_versions"}
-
-// modelDay is one model's rows in one day's partitions.
+// modelDay is one model's rows in one day's partition.
 type modelDay struct {
 	model int32
 	day   int64 // Unix microseconds of the day's start
@@ -25,13 +22,12 @@ type modelDay struct {
 // dayOf returns the start of the UTC day holding t.
 func dayOf(t time.Time) time.Time { return t.UTC().Truncate(day) }
 
-func partitionName(table string, d time.Time) string {
-	return table + "_" + d.Format("20060102")
-}
+// partitionName names the label_versions partition of day d.
+func partitionName(d time.Time) string { return "label_versions_" + d.Format("20060102") }
 
 // ensureDays makes sure the day partitions of need exist and that
 // raw_partitions lists each (model, day), in a short transaction of its
-// own: creating a partition takes a strong lock on its parent table, which
+// own: creating a partition takes a strong lock on the parent table, which
 // must not be held by an ingest transaction. A process remembers what it
 // ensured, so a steady stream of batches skips this step.
 func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
@@ -46,17 +42,13 @@ func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 	if len(miss) == 0 {
 		return nil
 	}
-	var (
-		names  []string
-		models = make([]int32, len(miss))
-		days   = make([]time.Time, len(miss))
-	)
+	models := make([]int32, len(miss))
+	days := make([]time.Time, len(miss))
+	var names []string
 	for i, md := range miss {
 		models[i], days[i] = md.model, time.UnixMicro(md.day).UTC()
-		for _, t := range partitioned {
-			if n := partitionName(t, days[i]); !slices.Contains(names, n) {
-				names = append(names, n)
-			}
+		if n := partitionName(days[i]); !slices.Contains(names, n) {
+			names = append(names, n)
 		}
 	}
 	err := pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
@@ -68,18 +60,16 @@ func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 			return err
 		}
 		for _, d := range days {
-			for _, t := range partitioned {
-				if !slices.Contains(missing, partitionName(t, d)) {
-					continue
-				}
-				ddl := fmt.Sprintf("CREATE TABLE %s PARTITION OF %s FOR VALUES FROM ('%s') TO ('%s')",
-					pgx.Identifier{partitionName(t, d)}.Sanitize(), t,
-					d.Format(time.RFC3339), d.Add(day).Format(time.RFC3339))
-				if _, err := tx.Exec(ctx, ddl); err != nil {
-					return err
-				}
-				missing = slices.DeleteFunc(missing, func(n string) bool { return n == partitionName(t, d) })
+			name := partitionName(d)
+			if !slices.Contains(missing, name) {
+				continue
 			}
+			ddl := fmt.Sprintf("CREATE TABLE %s PARTITION OF label_versions FOR VALUES FROM ('%s') TO ('%s')",
+				pgx.Identifier{name}.Sanitize(), d.Format(time.RFC3339), d.Add(day).Format(time.RFC3339))
+			if _, err := tx.Exec(ctx, ddl); err != nil {
+				return err
+			}
+			missing = slices.DeleteFunc(missing, func(n string) bool { return n == name })
 		}
 		_, err = tx.Exec(ctx, sqlAddDays, models, days)
 		return err
@@ -96,8 +86,8 @@ func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 }
 
 // dropDays drops the partitions of every day whose models have all purged
-// past it, in a transaction of its own, and returns how many days went.
-func (s *Store) dropDays(ctx context.Context) (int, error) {
+// past it, in a transaction of its own.
+func (s *Store) dropDays(ctx context.Context) error {
 	var dropped []time.Time
 	err := pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
 		dropped = dropped[:0]
@@ -113,10 +103,8 @@ func (s *Store) dropDays(ctx context.Context) (int, error) {
 			return err
 		}
 		for _, d := range days {
-			for _, t := range partitioned {
-				if _, err := tx.Exec(ctx, "DROP TABLE IF EXISTS "+pgx.Identifier{partitionName(t, d)}.Sanitize()); err != nil {
-					return err
-				}
+			if _, err := tx.Exec(ctx, "DROP TABLE IF EXISTS "+pgx.Identifier{partitionName(d)}.Sanitize()); err != nil {
+				return err
 			}
 			if _, err := tx.Exec(ctx, sqlForgetDayAll, d); err != nil {
 				return err
@@ -126,12 +114,12 @@ func (s *Store) dropDays(ctx context.Context) (int, error) {
 		return nil
 	})
 	if err != nil {
-		return 0, err
+		return err
 	}
 	s.forgetDays(func(md modelDay) bool {
 		return slices.ContainsFunc(dropped, func(d time.Time) bool { return d.UnixMicro() == md.day })
 	})
-	return len(dropped), nil
+	return nil
 }
 
 // forgetDays drops the cached (model, day) entries that match.

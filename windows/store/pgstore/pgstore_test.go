@@ -176,7 +176,7 @@ func TestPurgeDropsDays(t *testing.T) {
 	}
 	exists := func(d time.Time) bool {
 		var ok bool
-		if err := s.pool.QueryRow(ctx, `SELECT to_regclass($1) IS NOT NULL`, partitionName("label_versions", d)).Scan(&ok); err != nil {
+		if err := s.pool.QueryRow(ctx, `SELECT to_regclass($1) IS NOT NULL`, partitionName(d)).Scan(&ok); err != nil {
 			t.Fatal(err)
 		}
 		return ok

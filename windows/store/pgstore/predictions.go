@@ -22,9 +22,8 @@ import (
 // prediction_key_blocks reserves.
 const keyBlock = 1 << 16
 
-// predLine is a batch's first line for one (model, id).
+// predLine is one line of a prediction batch.
 type predLine struct {
-	line   int // index in the batch
 	model  int32
 	id     string
 	at     time.Time
@@ -34,7 +33,8 @@ type predLine struct {
 
 	// Set per attempt.
 	stored bool
-	old    *storedContent // the stored prediction when not stored
+	first  int            // index of the batch's first line with this (model, id)
+	old    *storedContent // the stored prediction, for a first line not stored
 }
 
 // storedContent is what duplicates are judged against.
@@ -54,10 +54,11 @@ func (c storedContent) same(p *store.Prediction) bool {
 // IngestPredictions stores a batch in one transaction; see store.Store.
 //
 // The batch is copied straight into predictions with COPY inside a
-// savepoint: in the usual case no line is known yet and that one COPY both
+// savepoint: in the usual case every line is new and that one COPY both
 // stores the batch and proves it new, through the primary key. If the key
-// refuses a line, the savepoint is rolled back, the stored content of the
-// batch's keys is read in one statement, and only the new lines are copied.
+// refuses a line (an id already stored, or repeated in the batch), the
+// savepoint is rolled back, the stored content of the batch's ids is read
+// in one statement, and only the first line of each new id is copied.
 // Counts are summed in memory and upserted once per row. Early labels are
 // looked for only when the model has any.
 func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction, now time.Time) (store.PredictionResult, error) {
@@ -73,7 +74,7 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 	if err != nil {
 		return res, err
 	}
-	lines, repeats, err := predLines(batch, ids)
+	lines, err := predLines(batch, ids)
 	if err != nil {
 		return res, err
 	}
@@ -101,23 +102,19 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 	}
 	for i := range lines {
 		l := &lines[i]
-		switch {
-		case l.stored:
-			res.Outcomes[l.line] = store.PredictionStored
-		case l.old.same(l.p):
-			res.Outcomes[l.line] = store.PredictionDuplicate
-		default:
-			res.Outcomes[l.line] = store.PredictionConflict
+		if l.stored {
+			res.Outcomes[i] = store.PredictionStored
+			continue
 		}
-	}
-	for i, first := range repeats {
-		l := &lines[first]
-		c := storedContent{at: l.at, segment: l.p.Segment, predicted: l.p.Predicted, scores: l.p.Scores}
-		if !l.stored {
-			c = *l.old
+		// A known id, or a repeat of an earlier line: judge the line against
+		// the prediction that stands.
+		f := &lines[l.first]
+		c := storedContent{at: f.at, segment: f.p.Segment, predicted: f.p.Predicted, scores: f.p.Scores}
+		if !f.stored {
+			c = *f.old
 		}
 		res.Outcomes[i] = store.PredictionConflict
-		if c.same(&batch[i]) {
+		if c.same(l.p) {
 			res.Outcomes[i] = store.PredictionDuplicate
 		}
 	}
@@ -125,32 +122,17 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 	return res, nil
 }
 
-// predLines returns the first line of each (model, id) of the batch, and
-// for each later line (by batch index) the index in lines of the first.
-func predLines(batch []store.Prediction, ids map[string]int32) ([]predLine, map[int]int, error) {
-	type key struct {
-		model int32
-		id    string
-	}
-	first := make(map[key]int, len(batch))
-	lines := make([]predLine, 0, len(batch))
-	repeats := map[int]int{}
+// predLines returns the lines of the batch.
+func predLines(batch []store.Prediction, ids map[string]int32) ([]predLine, error) {
+	lines := make([]predLine, len(batch))
 	for i := range batch {
 		p := &batch[i]
-		k := key{ids[p.Model], p.ID}
-		if j, ok := first[k]; ok {
-			repeats[i] = j
-			continue
-		}
 		if err := checkScores(p.Scores); err != nil {
-			return nil, nil, fmt.Errorf("prediction line %d: %w", i+1, err)
+			return nil, fmt.Errorf("prediction line %d: %w", i+1, err)
 		}
-		first[k] = len(lines)
-		lines = append(lines, predLine{
-			line: i, model: k.model, id: p.ID, at: micro(p.At), bucket: micro(p.Bucket), p: p,
-		})
+		lines[i] = predLine{model: ids[p.Model], id: p.ID, at: micro(p.At), bucket: micro(p.Bucket), p: p}
 	}
-	return lines, repeats, nil
+	return lines, nil
 }
 
 // checkScores refuses scores that JSON cannot carry.
@@ -207,7 +189,7 @@ func plainKey(k string) bool {
 // storePredictions is one attempt at the prediction transaction.
 func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []predLine, models []int32, t *tally) error {
 	for i := range lines {
-		lines[i].stored, lines[i].old = false, nil
+		lines[i].stored, lines[i].first, lines[i].old = false, i, nil
 	}
 	// First the shared early-label lock of each model: a label batch that
 	// holds an early label for one of these ids takes it exclusively, so
@@ -240,13 +222,14 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 	}
 	err := copyPredictions(ctx, tx, fresh)
 	if pgErr := (*pgconn.PgError)(nil); errors.As(err, &pgErr) && pgErr.Code == "23505" {
-		// Some id is known: start over from the savepoint with the new ones.
-		// Should a concurrent batch store one of them meanwhile, this copy
-		// fails too and the whole attempt is retried.
+		// Some id is known, or repeated within the batch: start over from
+		// the savepoint with the first line of each id that is new. Should
+		// a concurrent batch store one of them meanwhile, this copy fails
+		// too and the whole attempt is retried.
 		if _, err := tx.Exec(ctx, sqlRollbackToSave); err != nil {
 			return err
 		}
-		if fresh, err = newLines(ctx, tx, lines); err != nil {
+		if fresh, err = newLines(ctx, tx, firstLines(lines)); err != nil {
 			return err
 		}
 		err = copyPredictions(ctx, tx, fresh)
@@ -300,9 +283,30 @@ func copyPredictions(ctx context.Context, tx conn, lines []*predLine) error {
 	return err
 }
 
-// newLines reads the stored content of the batch's keys, records it on the
+// firstLines marks each line's first line of the same (model, id) and
+// returns the first lines.
+func firstLines(lines []predLine) []*predLine {
+	type key struct {
+		model int32
+		id    string
+	}
+	index := make(map[key]int, len(lines))
+	var out []*predLine
+	for i := range lines {
+		k := key{lines[i].model, lines[i].id}
+		if j, ok := index[k]; ok {
+			lines[i].first = j
+			continue
+		}
+		index[k] = i
+		out = append(out, &lines[i])
+	}
+	return out
+}
+
+// newLines reads the stored content of the lines' keys, records it on the
 // known lines and returns the others.
-func newLines(ctx context.Context, tx conn, lines []predLine) ([]*predLine, error) {
+func newLines(ctx context.Context, tx conn, lines []*predLine) ([]*predLine, error) {
 	type key struct {
 		model int32
 		id    string
@@ -310,9 +314,9 @@ func newLines(ctx context.Context, tx conn, lines []predLine) ([]*predLine, erro
 	models := make([]int32, len(lines))
 	idList := make([]string, len(lines))
 	index := make(map[key]*predLine, len(lines))
-	for i := range lines {
-		models[i], idList[i] = lines[i].model, lines[i].id
-		index[key{lines[i].model, lines[i].id}] = &lines[i]
+	for i, l := range lines {
+		models[i], idList[i] = l.model, l.id
+		index[key{l.model, l.id}] = l
 	}
 	rows, err := tx.Query(ctx, sqlStoredContent, models, idList)
 	if err != nil {
@@ -338,9 +342,9 @@ func newLines(ctx context.Context, tx conn, lines []predLine) ([]*predLine, erro
 		return nil, err
 	}
 	var fresh []*predLine
-	for i := range lines {
-		if lines[i].old == nil {
-			fresh = append(fresh, &lines[i])
+	for _, l := range lines {
+		if l.old == nil {
+			fresh = append(fresh, l)
 		}
 	}
 	return fresh, nil

@@ -9,18 +9,17 @@ import (
 )
 
 // PurgeRaw drops model's raw predictions in buckets starting before cutoff
-// with their scores and label versions, keeping cells and counts; see
+// with their label versions, keeping cells and counts; see
 // store.Store. It returns how many predictions it dropped.
 //
-// The narrow predictions rows are deleted (that table is global, see the
-// package documentation). Scores and label versions live in day partitions:
-// a day that the cutoff passes entirely and that holds no other model's
-// unpurged rows is dropped whole, after the rows are deleted, in a short
-// transaction of its own; in a day the cutoff splits, or one shared with a
-// model that still keeps it, this model's rows are deleted row by row. A
-// daemon that passes cutoffs at midnight UTC therefore never deletes raw
-// history row by row, unless models sharing the days have different
-// retention.
+// The predictions rows are deleted (that table is global, see the package
+// documentation). Label versions live in day partitions: a day that the
+// cutoff passes entirely and that holds no other model's unpurged rows is
+// dropped whole, after the rows are deleted, in a short transaction of its
+// own; in a day the cutoff splits, or one shared with a model that still
+// keeps it, this model's versions are deleted row by row. A daemon that
+// passes cutoffs at midnight UTC therefore never deletes label history row
+// by row, unless models sharing the days have different retention.
 func (s *Store) PurgeRaw(ctx context.Context, model string, cutoff time.Time) (int64, error) {
 	id, err := s.modelID(ctx, model)
 	if err != nil {
@@ -70,12 +69,10 @@ func (s *Store) PurgeRaw(ctx context.Context, model string, cutoff time.Time) (i
 				if d.whole && !d.shared {
 					continue // dropped whole below
 				}
-				for _, table := range partitioned {
-					del := fmt.Sprintf("DELETE FROM %s WHERE model_id = $1 AND bucket < $2",
-						pgx.Identifier{partitionName(table, d.day)}.Sanitize())
-					if _, err := tx.Exec(ctx, del, id, cutoff); err != nil {
-						return err
-					}
+				del := fmt.Sprintf("DELETE FROM %s WHERE model_id = $1 AND bucket < $2",
+					pgx.Identifier{partitionName(d.day)}.Sanitize())
+				if _, err := tx.Exec(ctx, del, id, cutoff); err != nil {
+					return err
 				}
 				if d.whole {
 					if _, err := tx.Exec(ctx, sqlForgetDay, id, d.day); err != nil {
@@ -98,7 +95,7 @@ func (s *Store) PurgeRaw(ctx context.Context, model string, cutoff time.Time) (i
 		}
 		return false
 	})
-	if err := s.retry(ctx, func() error { _, err := s.dropDays(ctx); return err }); err != nil {
+	if err := s.retry(ctx, func() error { return s.dropDays(ctx) }); err != nil {
 		return n, unavailable("drop purged day partitions", err)
 	}
 	return n, nil

@@ -38,7 +38,6 @@ const (
 // Model registry.
 const (
 	sqlModelIDs    = `SELECT name, model_id FROM models WHERE name = ANY($1::text[])`
-	sqlModelByName = `SELECT model_id FROM models WHERE name = $1`
 	sqlInsertModel = `INSERT INTO models (name) VALUES ($1) ON CONFLICT (name) DO NOTHING`
 	sqlLockModel   = `SELECT model_id FROM models WHERE name = $1 FOR UPDATE`
 	sqlClasses     = `SELECT name FROM model_classes WHERE model_id = $1 ORDER BY position`
@@ -94,15 +93,17 @@ FROM unnest($1::int[], $2::text[]) WITH ORDINALITY AS u(m, id, i)
 JOIN predictions p ON p.model_id = u.m AND p.id = u.id`
 	// sqlFindVersions returns every label version of the given predictions
 	// of one day, [$4, $5): planning prunes label_versions to that day's
-	// partition. The OFFSET 0 subquery keeps the planner from hashing the
-	// whole partition, which it may choose on stale statistics: each
-	// prediction is one index probe.
+	// partition.
 	sqlFindVersions = `SELECT u.i, v.implied, v.at, v.actual
 FROM unnest($1::int[], $2::timestamptz[], $3::bigint[]) WITH ORDINALITY AS u(m, b, k, i)
-CROSS JOIN LATERAL (
-    SELECT implied, at, actual FROM label_versions
-    WHERE model_id = u.m AND pkey = u.k AND bucket = u.b AND bucket >= $4 AND bucket < $5 OFFSET 0
-) v`
+JOIN label_versions v ON v.model_id = u.m AND v.pkey = u.k AND v.bucket = u.b
+WHERE v.bucket >= $4 AND v.bucket < $5`
+	// sqlNoHashJoin and sqlNoMergeJoin make the rest of a label transaction plan its joins
+	// as nested loops of index probes, one per line, which is right for a
+	// batch against a large table whatever the statistics say; on stale
+	// statistics the planner may otherwise hash a whole day partition.
+	sqlNoHashJoin  = `SET LOCAL enable_hashjoin = off`
+	sqlNoMergeJoin = `SET LOCAL enable_mergejoin = off`
 	// sqlAddEarly holds early labels and returns the versions that were new.
 	sqlAddEarly = `INSERT INTO early_labels (model_id, id, at, actual, received_at)
 SELECT u.m, u.id, u.at, u.actual, $5 FROM unnest($1::int[], $2::text[], $3::timestamptz[], $4::text[]) AS u(m, id, at, actual)
