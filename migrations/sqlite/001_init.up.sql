@@ -51,8 +51,12 @@ CREATE TABLE predictions (
     PRIMARY KEY (model_id, id)
 ) WITHOUT ROWID;
 
--- Bucket ranges: CountsAsOf, Verify and PurgeRaw.
-CREATE INDEX predictions_bucket ON predictions (model_id, bucket);
+-- Bucket ranges: CountsAsOf, Verify and PurgeRaw. at follows bucket so that
+-- a bucket's entries sort by event time rather than by id: predictions come
+-- roughly in time order, so each insert appends at the end of its bucket
+-- instead of splitting a page in the middle, and CountsAsOf's at bound is
+-- checked in the index.
+CREATE INDEX predictions_bucket ON predictions (model_id, bucket, at);
 
 -- Unlabeled predictions by event time: ApplyLabelTimeout finds the due ones
 -- without walking every labeled row; a row leaves the index when labeled.

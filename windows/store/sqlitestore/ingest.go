@@ -7,18 +7,24 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
+	"math"
 	"slices"
+	"strconv"
 	"time"
 
 	"github.com/classwatch/classwatch/windows/store"
+	"modernc.org/sqlite"
+	sqlite3 "modernc.org/sqlite/lib"
 )
 
 // IngestPredictions stores a batch in one transaction; see store.Store.
 //
-// Each line costs one insert into the predictions key (plus a read of the
-// stored line when the id is known). Predicted-class counts, cells and model
-// totals are summed in memory and written once per key at the end, so a
-// batch of a thousand predictions in one bucket updates one count row.
+// The lines are inserted by multi-row INSERT statements of up to a hundred
+// rows (see predictionInserter.insert); a line that met a stored prediction
+// with its key is judged by one read of that row. Predicted-class counts,
+// cells and model totals are summed in memory and written once per key at
+// the end, so a batch of a thousand predictions in one bucket updates one
+// count row.
 func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction, now time.Time) (store.PredictionResult, error) {
 	res := store.PredictionResult{Outcomes: make([]store.PredictionOutcome, len(batch))}
 	if len(batch) == 0 {
@@ -29,30 +35,41 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 		return res, err
 	}
 	defer tx.Rollback()
-	insert, content, hasEarlyStmt := tx.stmt(ctx, sqlInsertPrediction), tx.stmt(ctx, sqlPredictionContent), tx.stmt(ctx, sqlHasEarly)
-	var join *earlyJoiner // bound when the first model with early labels shows up
 
 	acc := newAccumulator()
-	hasEarly := map[int64]bool{}
-	received := micros(now)
+	lines := make([]predictionLine, len(batch))
+	var buf []byte
 	for i, p := range batch {
 		id, err := acc.model(ctx, s, tx, p.Model)
 		if err != nil {
 			return res, fmt.Errorf("prediction line %d: %w", i+1, err)
 		}
-		scores, err := encodeScores(p.Scores)
-		if err != nil {
+		start := len(buf)
+		if buf, err = appendScores(buf, p.Scores); err != nil {
 			return res, fmt.Errorf("prediction line %d: %w", i+1, err)
 		}
-		at, bucket := micros(p.At), micros(p.Bucket)
-		r, err := insert.ExecContext(ctx, id, p.ID, at, bucket, p.Segment, p.Predicted, scores, received)
-		if err != nil {
-			return res, unavailable("insert prediction", err)
+		lines[i] = predictionLine{model: id, at: micros(p.At), bucket: micros(p.Bucket), scores: [2]int{start, len(buf)}}
+	}
+	// One string holds every line's scores; each line binds a substring.
+	allScores := string(buf)
+
+	ins := predictionInserter{tx: tx, received: micros(now)}
+	for i := 0; i < len(batch); {
+		size := chunkFor(len(batch) - i)
+		if err := ins.insert(ctx, batch[i:i+size], lines[i:i+size], allScores); err != nil {
+			return res, err
 		}
-		if n, err := r.RowsAffected(); err != nil {
-			return res, unavailable("insert prediction", err)
-		} else if n == 0 {
-			same, err := sameContent(ctx, content, id, p, at, scores)
+		i += size
+	}
+
+	content, hasEarlyStmt := tx.stmt(ctx, sqlPredictionContent), tx.stmt(ctx, sqlHasEarly)
+	var join *earlyJoiner // bound when the first model with early labels shows up
+	hasEarly := map[int64]bool{}
+	for i, p := range batch {
+		l := &lines[i]
+		scores := l.scoreValue(allScores)
+		if !l.stored {
+			same, err := sameContent(ctx, content, l.model, p, l.at, scores)
 			if err != nil {
 				return res, err
 			}
@@ -64,15 +81,15 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 			continue
 		}
 		res.Outcomes[i] = store.PredictionStored
-		acc.addPredicted(id, bucket, p.Segment, p.Predicted, 1)
-		acc.stored(id, at)
+		acc.addPredicted(l.model, l.bucket, p.Segment, p.Predicted, 1)
+		acc.stored(l.model, l.at)
 
-		early, checked := hasEarly[id]
+		early, checked := hasEarly[l.model]
 		if !checked {
-			if err := hasEarlyStmt.QueryRowContext(ctx, id).Scan(&early); err != nil {
+			if err := hasEarlyStmt.QueryRowContext(ctx, l.model).Scan(&early); err != nil {
 				return res, unavailable("look for early labels", err)
 			}
-			hasEarly[id] = early
+			hasEarly[l.model] = early
 		}
 		if !early {
 			continue
@@ -80,13 +97,13 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 		if join == nil {
 			join = newEarlyJoiner(ctx, tx)
 		}
-		actual, joined, err := join.join(ctx, id, p.ID)
+		actual, joined, err := join.join(ctx, l.model, p.ID)
 		if err != nil {
 			return res, err
 		}
 		if joined {
-			acc.addCell(id, bucket, p.Segment, actual, p.Predicted, 1)
-			acc.labeled(id, 1)
+			acc.addCell(l.model, l.bucket, p.Segment, actual, p.Predicted, 1)
+			acc.labeled(l.model, 1)
 		}
 	}
 	if err := acc.flush(ctx, tx); err != nil {
@@ -97,6 +114,92 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 	}
 	res.Changes = acc.changes()
 	return res, nil
+}
+
+// predictionLine is what IngestPredictions derives from one line: the model
+// id, the encoded times, the span of the line's scores in the batch's score
+// text (empty: no scores) and whether the insert stored the line.
+type predictionLine struct {
+	model, at, bucket int64
+	scores            [2]int
+	stored            bool
+}
+
+// scoreValue returns the line's scores as bound and compared: the canonical
+// JSON text, or NULL for none.
+func (l *predictionLine) scoreValue(all string) sql.NullString {
+	if l.scores[0] == l.scores[1] {
+		return sql.NullString{}
+	}
+	return sql.NullString{String: all[l.scores[0]:l.scores[1]], Valid: true}
+}
+
+// predictionInserter runs the prediction inserts of one batch, reusing its
+// argument slice from chunk to chunk.
+type predictionInserter struct {
+	tx       *ingestTx
+	received int64
+	single   *sql.Stmt
+	chunks   map[int]*sql.Stmt
+	args     []any
+}
+
+// insert stores the lines of one chunk and marks those stored. A chunk of
+// several lines goes in as one statement that has no conflict clause: when
+// a key is already stored, before the batch or by an earlier line of it,
+// SQLite backs out the whole statement (leaving the transaction and its
+// earlier statements as they were) and insert stores the chunk again line
+// by line, skipping the stored keys. A batch that brings no known key, the
+// usual one, thus pays one statement per chunk.
+func (in *predictionInserter) insert(ctx context.Context, batch []store.Prediction, lines []predictionLine, allScores string) error {
+	args := in.args[:0]
+	for i, p := range batch {
+		l := &lines[i]
+		var scores any
+		if v := l.scoreValue(allScores); v.Valid {
+			scores = v.String
+		}
+		args = append(args, l.model, p.ID, l.at, l.bucket, p.Segment, p.Predicted, scores, in.received)
+	}
+	in.args = args
+	if len(batch) > 1 {
+		st, ok := in.chunks[len(batch)]
+		if !ok {
+			if in.chunks == nil {
+				in.chunks = map[int]*sql.Stmt{}
+			}
+			st = in.tx.stmt(ctx, insertPredictionsSQL(len(batch)))
+			in.chunks[len(batch)] = st
+		}
+		_, err := st.ExecContext(ctx, args...)
+		if err == nil {
+			for i := range lines {
+				lines[i].stored = true
+			}
+			return nil
+		}
+		if !keyConflict(err) {
+			return unavailable("insert predictions", err)
+		}
+	}
+	if in.single == nil {
+		in.single = in.tx.stmt(ctx, sqlInsertPrediction)
+	}
+	for i := range lines {
+		n, err := affected(in.single.ExecContext(ctx, args[8*i:8*i+8]...))
+		if err != nil {
+			return unavailable("insert prediction", err)
+		}
+		lines[i].stored = n == 1
+	}
+	return nil
+}
+
+// keyConflict reports whether err is SQLite's refusal of a key already
+// stored.
+func keyConflict(err error) bool {
+	var e *sqlite.Error
+	return errors.As(err, &e) && e.Code() == sqlite3.SQLITE_CONSTRAINT_PRIMARYKEY
 }
 
 // sameContent reports whether p repeats the stored prediction (model, p.ID).
@@ -113,18 +216,76 @@ func sameContent(ctx context.Context, content *sql.Stmt, model int64, p store.Pr
 		(p.AtDefaulted || storedAt == at), nil
 }
 
-// encodeScores returns the canonical JSON of scores (encoding/json sorts map
-// keys and prints the shortest float that reads back exactly, so equal maps
-// give equal text), or NULL for none.
-func encodeScores(scores map[string]float64) (sql.NullString, error) {
+// appendScores appends the canonical JSON of scores to b, or nothing for
+// none. The text is exactly what encoding/json gives (keys sorted, each
+// float the shortest text that reads back exactly, in the same notation), so
+// equal maps give equal text; plain keys and finite scores are written
+// here without reflection, anything else goes through encoding/json.
+func appendScores(b []byte, scores map[string]float64) ([]byte, error) {
 	if len(scores) == 0 {
-		return sql.NullString{}, nil
+		return b, nil
 	}
-	b, err := json.Marshal(scores)
+	var small [8]string
+	keys := small[:0]
+	for k, v := range scores {
+		if !plainKey(k) || math.IsInf(v, 0) || math.IsNaN(v) {
+			return appendScoresJSON(b, scores)
+		}
+		keys = append(keys, k)
+	}
+	slices.Sort(keys)
+	b = append(b, '{')
+	for i, k := range keys {
+		if i > 0 {
+			b = append(b, ',')
+		}
+		b = append(b, '"')
+		b = append(b, k...)
+		b = append(b, '"', ':')
+		b = appendFloat(b, scores[k])
+	}
+	return append(b, '}'), nil
+}
+
+// appendScoresJSON is appendScores through encoding/json.
+func appendScoresJSON(b []byte, scores map[string]float64) ([]byte, error) {
+	j, err := json.Marshal(scores)
 	if err != nil {
-		return sql.NullString{}, fmt.Errorf("encode scores: %w", err)
+		return b, fmt.Errorf("encode scores: %w", err)
 	}
-	return sql.NullString{String: string(b), Valid: true}, nil
+	return append(b, j...), nil
+}
+
+// plainKey reports whether encoding/json writes k between quotes as it is:
+// printable ASCII other than the quote, the backslash and the characters it
+// escapes for HTML (<, >, &).
+func plainKey(k string) bool {
+	for i := 0; i < len(k); i++ {
+		c := k[i]
+		if c < 0x20 || c > 0x7e || c == '"' || c == '\\' || c == '<' || c == '>' || c == '&' {
+			return false
+		}
+	}
+	return true
+}
+
+// appendFloat writes a finite float64 as encoding/json does: the shortest
+// text that reads back exactly, in exponent notation (with at least one
+// exponent digit) below 1e-6 and from 1e21 on, plain notation otherwise.
+func appendFloat(b []byte, f float64) []byte {
+	format := byte('f')
+	if abs := math.Abs(f); abs != 0 && (abs < 1e-6 || abs >= 1e21) {
+		format = 'e'
+	}
+	b = strconv.AppendFloat(b, f, format, -1, 64)
+	if format == 'e' {
+		// Shorten e-09 to e-9.
+		if n := len(b); n >= 4 && b[n-4] == 'e' && b[n-3] == '-' && b[n-2] == '0' {
+			b[n-2] = b[n-1]
+			b = b[:n-1]
+		}
+	}
+	return b
 }
 
 // earlyJoiner moves a new prediction's early labels into its label history.

@@ -1,7 +1,11 @@
 package sqlitestore
 
-// Every statement the store runs is one of these constants; nothing builds
-// SQL at run time. Times are bound as Unix microseconds.
+import "strings"
+
+// Every statement the store runs is one of these constants, except the
+// multi-row prediction insert, whose row list insertPredictionsSQL repeats
+// for each of the few fixed chunk sizes. Times are bound as Unix
+// microseconds.
 
 // Schema versions.
 const (
@@ -47,6 +51,37 @@ ON CONFLICT (model_id, id) DO NOTHING`
 VALUES (?, ?, ?, ?, ?)
 ON CONFLICT (model_id, bucket, segment, predicted) DO UPDATE SET n = n + excluded.n`
 )
+
+// insertChunks returns the row counts of the multi-row prediction inserts,
+// largest first; a batch is cut into chunks of these sizes and a remainder
+// below the smallest goes in line by line. A chunk spends the per-statement
+// work (stepping, the driver's bookkeeping) once for all its rows; past
+// about a hundred rows the saving flattens out.
+func insertChunks() []int { return []int{100, 10} }
+
+// chunkFor returns the largest chunk size that fits in n > 0 lines, or 1.
+func chunkFor(n int) int {
+	for _, size := range insertChunks() {
+		if size <= n {
+			return size
+		}
+	}
+	return 1
+}
+
+// insertPredictionsSQL is the insert of rows predictions. It has no conflict
+// clause: a key already stored fails the whole statement.
+func insertPredictionsSQL(rows int) string {
+	var b strings.Builder
+	b.WriteString("INSERT INTO predictions (model_id, id, at, bucket, segment, predicted, scores, received_at)\nVALUES ")
+	for i := range rows {
+		if i > 0 {
+			b.WriteString(", ")
+		}
+		b.WriteString("(?, ?, ?, ?, ?, ?, ?, ?)")
+	}
+	return b.String()
+}
 
 // Label ingest.
 const (

@@ -169,11 +169,15 @@ func (s *Store) Close() error {
 // once on the writer connection and reused by every transaction: preparing
 // them per batch would cost more than the inserts of a one-line batch.
 func ingestQueries() []string {
-	return []string{
+	qs := []string{
 		sqlInsertPrediction, sqlPredictionContent, sqlHasEarly, sqlEarlyFor, sqlDeleteEarlyFor,
 		sqlPredictionLabel, sqlInsertEarly, sqlInsertVersion, sqlSetLabel,
 		sqlAddCell, sqlAddPredicted, sqlModelTotals,
 	}
+	for _, rows := range insertChunks() {
+		qs = append(qs, insertPredictionsSQL(rows))
+	}
+	return qs
 }
 
 // ingestTx is a write transaction that runs the prepared ingest statements.
