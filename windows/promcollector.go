@@ -1,172 +1,174 @@
 package windows
 
 import (
+	"compress/gzip"
+	"errors"
+	"fmt"
+	"net/http"
 	"slices"
+	"strconv"
 	"strings"
+	"sync"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
 	dto "github.com/prometheus/client_model/go"
 )
 
-// promCollector exports a Tracker's windows. Every series is built at scrape
+// promGatherer exports a Tracker's windows. Every series is built at scrape
 // time from the tracker's current views, so a series whose figure becomes
 // undefined, or a class or window that goes away, leaves nothing stale.
-type promCollector struct {
+//
+// It builds the metric families itself instead of going through a
+// prometheus.Registry: a scrape of 50 models × 12 classes × 4 windows has
+// about 52,000 series, and the registry's per-series checks (label
+// validation, hashing for duplicates, sorting) cost more than computing the
+// windows. The families are built already in the registry's order (families
+// by name, labels by name, series by label values), every label pair is
+// valid by construction, and no two series of a family share label values.
+type promGatherer struct {
 	t          *Tracker
 	confidence float64
 
-	watermark     *prometheus.Desc
-	windowStart   *prometheus.Desc
-	windowEnd     *prometheus.Desc
-	predictions   *prometheus.Desc
-	labeled       *prometheus.Desc
-	coverage      *prometheus.Desc
-	accuracy      *prometheus.Desc
-	balanced      *prometheus.Desc
-	macroF1       *prometheus.Desc
-	confusion     *prometheus.Desc
-	classPredicts *prometheus.Desc
-	recall        *prometheus.Desc
-	recallLower   *prometheus.Desc
-	recallUpper   *prometheus.Desc
-	precision     *prometheus.Desc
-	specificity   *prometheus.Desc
-	f1            *prometheus.Desc
-	prevalence    *prometheus.Desc
-	predicted     *prometheus.Desc
+	watermark     family
+	windowStart   family
+	windowEnd     family
+	predictions   family
+	labeled       family
+	coverage      family
+	accuracy      family
+	balanced      family
+	macroF1       family
+	confusion     family
+	classPredicts family
+	recall        family
+	recallLower   family
+	recallUpper   family
+	precision     family
+	specificity   family
+	f1            family
+	prevalence    family
+	predicted     family
 }
 
-// NewCollector returns a Prometheus collector of t's windows, with
-// confidence intervals at the given level (0.95 for 95%). The caller
-// registers it on its own registry.
-func NewCollector(t *Tracker, confidence float64) prometheus.Collector {
-	win := []string{"model", "window"}
-	class := []string{"model", "window", "class"}
-	d := func(name, help string, labels []string) *prometheus.Desc {
-		return prometheus.NewDesc(name, help, labels, nil)
-	}
-	return &promCollector{
+// family names one gauge family and its help text.
+type family struct {
+	name, help string
+}
+
+// NewGatherer returns a Prometheus gatherer of t's windows, with confidence
+// intervals at the given level (0.95 for 95%). Its families are sorted and
+// checked as a prometheus.Registry would return them; serve it together
+// with the caller's registry through MergeGatherers.
+func NewGatherer(t *Tracker, confidence float64) prometheus.Gatherer {
+	return &promGatherer{
 		t:          t,
 		confidence: confidence,
 
-		watermark:     d("classwatch_watermark_timestamp_seconds", "End of the bucket that holds the model's latest prediction time (or the current time under the wall clock), in Unix seconds; windows end here less their lag.", []string{"model"}),
-		windowStart:   d("classwatch_window_start_timestamp_seconds", "Start of the window's first bucket, in Unix seconds.", win),
-		windowEnd:     d("classwatch_window_end_timestamp_seconds", "End of the window's last bucket (exclusive), in Unix seconds.", win),
-		predictions:   d("classwatch_window_predictions", "Predictions made in the window, labeled or not.", win),
-		labeled:       d("classwatch_window_labeled", "Predictions made in the window that have a label.", win),
-		coverage:      d("classwatch_label_coverage_ratio", "Labeled predictions over all predictions in the window.", win),
-		accuracy:      d("classwatch_accuracy_ratio", "Correct predictions over labeled predictions in the window.", win),
-		balanced:      d("classwatch_balanced_accuracy_ratio", "Mean recall over the classes with at least one labeled example in the window.", win),
-		macroF1:       d("classwatch_macro_f1_ratio", "Mean F1 over the classes present among the window's actual or predicted classes.", win),
-		confusion:     d("classwatch_confusion", "Labeled predictions in the window by actual and predicted class.", []string{"model", "window", "actual", "predicted"}),
-		classPredicts: d("classwatch_window_class_predictions", "Predictions of the class made in the window, labeled or not.", class),
-		recall:        d("classwatch_recall_ratio", "Recall of the class in the window: true positives over labeled examples of the class.", class),
-		recallLower:   d("classwatch_recall_lower_ratio", "Lower bound of the Wilson score interval of the class's recall.", class),
-		recallUpper:   d("classwatch_recall_upper_ratio", "Upper bound of the Wilson score interval of the class's recall.", class),
-		precision:     d("classwatch_precision_ratio", "Precision of the class in the window: true positives over labeled predictions of the class.", class),
-		specificity:   d("classwatch_specificity_ratio", "Specificity of the class in the window: true negatives over labeled examples of other classes.", class),
-		f1:            d("classwatch_f1_ratio", "F1 score of the class in the window.", class),
-		prevalence:    d("classwatch_prevalence_ratio", "Labeled examples of the class over all labeled predictions in the window.", class),
-		predicted:     d("classwatch_predicted_ratio", "Predictions of the class over all predictions in the window, labeled or not.", class),
+		watermark:     family{"classwatch_watermark_timestamp_seconds", "End of the bucket that holds the model's latest prediction time (or the current time under the wall clock), in Unix seconds; windows end here less their lag."},
+		windowStart:   family{"classwatch_window_start_timestamp_seconds", "Start of the window's first bucket, in Unix seconds."},
+		windowEnd:     family{"classwatch_window_end_timestamp_seconds", "End of the window's last bucket (exclusive), in Unix seconds."},
+		predictions:   family{"classwatch_window_predictions", "Predictions made in the window, labeled or not."},
+		labeled:       family{"classwatch_window_labeled", "Predictions made in the window that have a label."},
+		coverage:      family{"classwatch_label_coverage_ratio", "Labeled predictions over all predictions in the window."},
+		accuracy:      family{"classwatch_accuracy_ratio", "Correct predictions over labeled predictions in the window."},
+		balanced:      family{"classwatch_balanced_accuracy_ratio", "Mean recall over the classes with at least one labeled example in the window."},
+		macroF1:       family{"classwatch_macro_f1_ratio", "Mean F1 over the classes present among the window's actual or predicted classes."},
+		confusion:     family{"classwatch_confusion", "Labeled predictions in the window by actual and predicted class."},
+		classPredicts: family{"classwatch_window_class_predictions", "Predictions of the class made in the window, labeled or not."},
+		recall:        family{"classwatch_recall_ratio", "Recall of the class in the window: true positives over labeled examples of the class."},
+		recallLower:   family{"classwatch_recall_lower_ratio", "Lower bound of the Wilson score interval of the class's recall."},
+		recallUpper:   family{"classwatch_recall_upper_ratio", "Upper bound of the Wilson score interval of the class's recall."},
+		precision:     family{"classwatch_precision_ratio", "Precision of the class in the window: true positives over labeled predictions of the class."},
+		specificity:   family{"classwatch_specificity_ratio", "Specificity of the class in the window: true negatives over labeled examples of other classes."},
+		f1:            family{"classwatch_f1_ratio", "F1 score of the class in the window."},
+		prevalence:    family{"classwatch_prevalence_ratio", "Labeled examples of the class over all labeled predictions in the window."},
+		predicted:     family{"classwatch_predicted_ratio", "Predictions of the class over all predictions in the window, labeled or not."},
 	}
 }
 
-// Describe sends every descriptor the collector uses.
-func (c *promCollector) Describe(ch chan<- *prometheus.Desc) {
-	for _, d := range []*prometheus.Desc{
-		c.watermark, c.windowStart, c.windowEnd, c.predictions, c.labeled,
-		c.coverage, c.accuracy, c.balanced, c.macroF1, c.confusion,
-		c.classPredicts, c.recall, c.recallLower, c.recallUpper, c.precision,
-		c.specificity, c.f1, c.prevalence, c.predicted,
-	} {
-		ch <- d
-	}
-}
-
-// Collect builds every series from the tracker's current views. Undefined
-// ratios are left out; counts are always sent, zeros included.
-//
-// The registry sorts each family's series by label values. Sending them in
-// that order already (labels sorted by name, series by values) lets its
-// sort finish in one pass; unsorted, sorting is a quarter of a large
-// scrape's cost.
-func (c *promCollector) Collect(ch chan<- prometheus.Metric) {
-	models, samples := c.snapshot()
-	b := newSampleBatch(samples, 4*samples)
-	send := func(d *prometheus.Desc, v float64, labels ...*dto.LabelPair) {
-		ch <- b.add(d, v, labels...)
-	}
+// Gather builds every series from the tracker's current views. Undefined
+// ratios are left out; counts are always sent, zeros included. Families
+// without a series are left out, as a registry leaves them out.
+func (g *promGatherer) Gather() ([]*dto.MetricFamily, error) {
+	models, samples := g.snapshot()
+	b := newFamilyBuilder(samples, 4*samples)
+	b.begin(g.watermark)
 	for _, mf := range models {
 		if !mf.watermark.IsZero() {
-			send(c.watermark, unixSeconds(mf.watermark), mf.pair)
+			b.add(unixSeconds(mf.watermark), mf.pair)
 		}
 	}
 
 	// {model, window} families.
-	perWindow := func(d *prometheus.Desc, value func(vf *viewFigures) (float64, bool)) {
+	perWindow := func(f family, value func(vf *viewFigures) (float64, bool)) {
+		b.begin(f)
 		for _, mf := range models {
 			for i := range mf.views {
 				if v, ok := value(&mf.views[i]); ok {
-					send(d, v, mf.pair, mf.views[i].pair)
+					b.add(v, mf.pair, mf.views[i].pair)
 				}
 			}
 		}
 	}
-	perWindow(c.windowStart, func(vf *viewFigures) (float64, bool) {
+	perWindow(g.windowStart, func(vf *viewFigures) (float64, bool) {
 		return unixSeconds(vf.v.From), !vf.v.Watermark.IsZero()
 	})
-	perWindow(c.windowEnd, func(vf *viewFigures) (float64, bool) {
+	perWindow(g.windowEnd, func(vf *viewFigures) (float64, bool) {
 		return unixSeconds(vf.v.To), !vf.v.Watermark.IsZero()
 	})
-	perWindow(c.predictions, func(vf *viewFigures) (float64, bool) { return float64(vf.m.Predictions), true })
-	perWindow(c.labeled, func(vf *viewFigures) (float64, bool) { return float64(vf.m.Labeled), true })
-	perWindow(c.coverage, func(vf *viewFigures) (float64, bool) { return deref(vf.m.LabelCoverage) })
-	perWindow(c.accuracy, func(vf *viewFigures) (float64, bool) { return deref(vf.m.Accuracy) })
-	perWindow(c.balanced, func(vf *viewFigures) (float64, bool) { return deref(vf.m.BalancedAccuracy) })
-	perWindow(c.macroF1, func(vf *viewFigures) (float64, bool) { return deref(vf.m.MacroF1) })
+	perWindow(g.predictions, func(vf *viewFigures) (float64, bool) { return float64(vf.m.Predictions), true })
+	perWindow(g.labeled, func(vf *viewFigures) (float64, bool) { return float64(vf.m.Labeled), true })
+	perWindow(g.coverage, func(vf *viewFigures) (float64, bool) { return deref(vf.m.LabelCoverage) })
+	perWindow(g.accuracy, func(vf *viewFigures) (float64, bool) { return deref(vf.m.Accuracy) })
+	perWindow(g.balanced, func(vf *viewFigures) (float64, bool) { return deref(vf.m.BalancedAccuracy) })
+	perWindow(g.macroF1, func(vf *viewFigures) (float64, bool) { return deref(vf.m.MacroF1) })
 
 	// {class, model, window} families.
 	refs := classRefs(models)
-	perClass := func(d *prometheus.Desc, value func(cm *ClassMetrics) (float64, bool)) {
+	perClass := func(f family, value func(cm *ClassMetrics) (float64, bool)) {
+		b.begin(f)
 		for _, r := range refs {
 			mf := &models[r.model]
 			for i := range mf.views {
 				if v, ok := value(&mf.views[i].m.PerClass[r.index]); ok {
-					send(d, v, mf.class[r.index], mf.pair, mf.views[i].pair)
+					b.add(v, mf.class[r.index], mf.pair, mf.views[i].pair)
 				}
 			}
 		}
 	}
-	perClass(c.classPredicts, func(cm *ClassMetrics) (float64, bool) { return float64(cm.PredictedCount), true })
-	perClass(c.recall, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Recall) })
-	perClass(c.recallLower, func(cm *ClassMetrics) (float64, bool) {
+	perClass(g.classPredicts, func(cm *ClassMetrics) (float64, bool) { return float64(cm.PredictedCount), true })
+	perClass(g.recall, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Recall) })
+	perClass(g.recallLower, func(cm *ClassMetrics) (float64, bool) {
 		if cm.RecallInterval == nil {
 			return 0, false
 		}
 		return cm.RecallInterval.Lo, true
 	})
-	perClass(c.recallUpper, func(cm *ClassMetrics) (float64, bool) {
+	perClass(g.recallUpper, func(cm *ClassMetrics) (float64, bool) {
 		if cm.RecallInterval == nil {
 			return 0, false
 		}
 		return cm.RecallInterval.Hi, true
 	})
-	perClass(c.precision, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Precision) })
-	perClass(c.specificity, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Specificity) })
-	perClass(c.f1, func(cm *ClassMetrics) (float64, bool) { return deref(cm.F1) })
-	perClass(c.prevalence, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Prevalence) })
-	perClass(c.predicted, func(cm *ClassMetrics) (float64, bool) { return deref(cm.PredictedShare) })
+	perClass(g.precision, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Precision) })
+	perClass(g.specificity, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Specificity) })
+	perClass(g.f1, func(cm *ClassMetrics) (float64, bool) { return deref(cm.F1) })
+	perClass(g.prevalence, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Prevalence) })
+	perClass(g.predicted, func(cm *ClassMetrics) (float64, bool) { return deref(cm.PredictedShare) })
 
 	// {actual, model, predicted, window}: every cell, zeros included.
+	b.begin(g.confusion)
 	for _, r := range refs {
 		mf := &models[r.model]
 		for _, p := range mf.byName {
 			for i := range mf.views {
-				send(c.confusion, float64(mf.views[i].v.Matrix.At(r.index, p)), mf.actual[r.index], mf.pair, mf.predicted[p], mf.views[i].pair)
+				b.add(float64(mf.views[i].v.Matrix.At(r.index, p)), mf.actual[r.index], mf.pair, mf.predicted[p], mf.views[i].pair)
 			}
 		}
 	}
+	return b.families(), nil
 }
 
 // modelFigures are one model's views and metrics at scrape time.
@@ -189,14 +191,14 @@ type viewFigures struct {
 
 // snapshot reads every model's views, sorted by model then window name,
 // computes their metrics, and counts the samples they can give at most.
-func (c *promCollector) snapshot() (models []modelFigures, samples int) {
-	for _, name := range c.t.Models() {
-		views := c.t.Views(name)
-		wm, _ := c.t.Watermark(name)
+func (g *promGatherer) snapshot() (models []modelFigures, samples int) {
+	for _, name := range g.t.Models() {
+		views := g.t.Views(name)
+		wm, _ := g.t.Watermark(name)
 		slices.SortFunc(views, func(a, b View) int { return strings.Compare(a.Window.Name, b.Window.Name) })
 		mf := modelFigures{pair: labelPair("model", name), watermark: wm, views: make([]viewFigures, len(views))}
 		for i, v := range views {
-			mf.views[i] = viewFigures{v: v, m: v.Metrics(c.confidence), pair: labelPair("window", v.Window.Name)}
+			mf.views[i] = viewFigures{v: v, m: v.Metrics(g.confidence), pair: labelPair("window", v.Window.Name)}
 		}
 		var classes []string
 		if len(views) > 0 {
@@ -248,53 +250,211 @@ func labelPair(name, value string) *dto.LabelPair {
 	return &dto.LabelPair{Name: &name, Value: &value}
 }
 
-// sample is one gauge sample of a scrape. A scrape of 50 models × 12
-// classes × 4 windows sends about 52,000 samples; prometheus.MustNewConstMetric
-// would allocate and sort label pairs for each, so samples are instead cut
-// from one batch per scrape and share their label pairs, which nothing
-// downstream modifies.
-type sample struct {
-	desc *prometheus.Desc
-	// labels are sorted by name, as the registry expects.
-	labels []*dto.LabelPair
-	value  float64
-	gauge  dto.Gauge
-}
-
-// Desc returns the sample's descriptor.
-func (s *sample) Desc() *prometheus.Desc { return s.desc }
-
-// Write fills out with the sample's labels and gauge value.
-func (s *sample) Write(out *dto.Metric) error {
-	out.Label = s.labels
-	out.Gauge = &s.gauge
-	return nil
-}
-
-// sampleBatch hands out samples and label slices from preallocated arrays.
-// Its capacities must cover what is added: a sample handed out is never
-// moved.
-type sampleBatch struct {
-	samples []sample
+// familyBuilder cuts a scrape's families, series, gauges and label slices
+// from arrays allocated once per scrape. A scrape of 50 models × 12
+// classes × 4 windows has about 52,000 series, which share their label
+// pairs; nothing downstream modifies them. The arrays are sized from the
+// snapshot's count; should append ever move one, the pointers already
+// handed out keep pointing at the old copy, whose values are final.
+type familyBuilder struct {
+	fams    []*dto.MetricFamily
+	gauge   dto.MetricType
+	ptrs    []*dto.Metric
+	metrics []dto.Metric
+	gauges  []dto.Gauge
+	values  []float64
 	labels  []*dto.LabelPair
+	// start is where the current family's series begin in ptrs.
+	start int
 }
 
-func newSampleBatch(samples, labels int) *sampleBatch {
-	return &sampleBatch{samples: make([]sample, 0, samples), labels: make([]*dto.LabelPair, 0, labels)}
+func newFamilyBuilder(samples, labels int) *familyBuilder {
+	return &familyBuilder{
+		gauge:   dto.MetricType_GAUGE,
+		ptrs:    make([]*dto.Metric, 0, samples),
+		metrics: make([]dto.Metric, 0, samples),
+		gauges:  make([]dto.Gauge, 0, samples),
+		values:  make([]float64, 0, samples),
+		labels:  make([]*dto.LabelPair, 0, labels),
+	}
 }
 
-// add returns a new sample; labels must be sorted by name.
-func (b *sampleBatch) add(d *prometheus.Desc, v float64, labels ...*dto.LabelPair) *sample {
+// begin ends the current family and starts a gauge family f.
+func (b *familyBuilder) begin(f family) {
+	b.end()
+	b.fams = append(b.fams, &dto.MetricFamily{Name: &f.name, Help: &f.help, Type: &b.gauge})
+}
+
+// end gives the current family the series added since it began.
+func (b *familyBuilder) end() {
+	if len(b.fams) > 0 {
+		b.fams[len(b.fams)-1].Metric = b.ptrs[b.start:len(b.ptrs):len(b.ptrs)]
+		b.start = len(b.ptrs)
+	}
+}
+
+// add adds a series to the current family; labels must be sorted by name,
+// and series must come in the order of their label values.
+func (b *familyBuilder) add(v float64, labels ...*dto.LabelPair) {
 	start := len(b.labels)
 	b.labels = append(b.labels, labels...)
-	b.samples = b.samples[:len(b.samples)+1]
-	s := &b.samples[len(b.samples)-1]
-	s.desc, s.value, s.labels = d, v, b.labels[start:len(b.labels):len(b.labels)]
-	s.gauge.Value = &s.value
-	return s
+	b.values = append(b.values, v)
+	b.gauges = append(b.gauges, dto.Gauge{Value: &b.values[len(b.values)-1]})
+	b.metrics = append(b.metrics, dto.Metric{Label: b.labels[start:len(b.labels):len(b.labels)], Gauge: &b.gauges[len(b.gauges)-1]})
+	b.ptrs = append(b.ptrs, &b.metrics[len(b.metrics)-1])
+}
+
+// families returns the non-empty families sorted by name.
+func (b *familyBuilder) families() []*dto.MetricFamily {
+	b.end()
+	fams := slices.DeleteFunc(b.fams, func(mf *dto.MetricFamily) bool { return len(mf.Metric) == 0 })
+	slices.SortFunc(fams, func(a, b *dto.MetricFamily) int { return strings.Compare(a.GetName(), b.GetName()) })
+	return fams
 }
 
 // unixSeconds returns t as fractional Unix seconds.
 func unixSeconds(t time.Time) float64 {
 	return float64(t.UnixNano()) / 1e9
+}
+
+// MergeGatherers returns a gatherer of the families of every gatherer in
+// gs, sorted by name. Unlike prometheus.Gatherers it does not check every
+// series again, which is most of its cost on a large scrape: each gatherer
+// must return checked families (a prometheus.Registry does, and so does
+// NewGatherer's), and no two may return the same family name. A family
+// name that comes twice is an error, and only its first family is kept.
+// Errors of the gatherers are returned with the families they did gather.
+func MergeGatherers(gs ...prometheus.Gatherer) prometheus.Gatherer {
+	return prometheus.GathererFunc(func() ([]*dto.MetricFamily, error) {
+		var (
+			all  []*dto.MetricFamily
+			errs []error
+		)
+		for _, g := range gs {
+			mfs, err := g.Gather()
+			if err != nil {
+				errs = append(errs, err)
+			}
+			all = append(all, mfs...)
+		}
+		slices.SortStableFunc(all, func(a, b *dto.MetricFamily) int { return strings.Compare(a.GetName(), b.GetName()) })
+		all = slices.CompactFunc(all, func(a, b *dto.MetricFamily) bool {
+			if a.GetName() != b.GetName() {
+				return false
+			}
+			errs = append(errs, fmt.Errorf("merge families: %s gathered twice", a.GetName()))
+			return true
+		})
+		return all, errors.Join(errs...)
+	})
+}
+
+// MetricsHandler serves g like promhttp.HandlerFor with opts (content
+// negotiation, OpenMetrics, name[] filters, error handling), except that it
+// compresses with gzip itself, at gzip.BestSpeed: promhttp compresses at
+// the default level, which on a scrape of 5 MB of text costs more than
+// gathering and encoding it. opts.DisableCompression turns compression off
+// altogether; opts.OfferedCompressions is ignored (gzip is the only one
+// offered).
+func MetricsHandler(g prometheus.Gatherer, opts promhttp.HandlerOpts) http.Handler {
+	compress := !opts.DisableCompression
+	opts.DisableCompression = true
+	opts.OfferedCompressions = nil
+	h := promhttp.HandlerFor(g, opts)
+	writers := &sync.Pool{New: func() any {
+		w, _ := gzip.NewWriterLevel(nil, gzip.BestSpeed) // the level is valid: no error
+		return w
+	}}
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		if !compress || !acceptsGzip(r.Header.Values("Accept-Encoding")) {
+			h.ServeHTTP(w, r)
+			return
+		}
+		gw := &gzipResponse{ResponseWriter: w, writers: writers}
+		defer gw.close()
+		h.ServeHTTP(gw, r)
+	})
+}
+
+// acceptsGzip reports whether Accept-Encoding values accept gzip: named
+// with a non-zero q, or through "*" when gzip is not named (RFC 9110
+// §12.5.3).
+func acceptsGzip(values []string) bool {
+	star := false
+	for _, v := range values {
+		for item := range strings.SplitSeq(v, ",") {
+			coding, params, _ := strings.Cut(item, ";")
+			coding = strings.ToLower(strings.TrimSpace(coding))
+			if coding != "gzip" && coding != "*" {
+				continue
+			}
+			ok := qNonZero(params)
+			if coding == "gzip" {
+				return ok
+			}
+			star = star || ok
+		}
+	}
+	return star
+}
+
+// qNonZero reports whether an Accept-Encoding item's parameters leave its
+// weight above zero (no q parameter means q=1).
+func qNonZero(params string) bool {
+	for p := range strings.SplitSeq(params, ";") {
+		name, value, _ := strings.Cut(p, "=")
+		if strings.EqualFold(strings.TrimSpace(name), "q") {
+			q, err := strconv.ParseFloat(strings.TrimSpace(value), 64)
+			return err == nil && q > 0
+		}
+	}
+	return true
+}
+
+// gzipResponse compresses a 200 response's body. Any other status (an
+// error page) goes out as it is, uncompressed.
+type gzipResponse struct {
+	http.ResponseWriter
+	writers *sync.Pool
+	gz      *gzip.Writer
+	started bool
+}
+
+// WriteHeader sends the header, announcing gzip when the status is 200.
+func (w *gzipResponse) WriteHeader(code int) {
+	if w.started {
+		return
+	}
+	w.started = true
+	if code == http.StatusOK {
+		h := w.Header()
+		h.Set("Content-Encoding", "gzip")
+		h.Add("Vary", "Accept-Encoding")
+		h.Del("Content-Length")
+		w.gz = w.writers.Get().(*gzip.Writer)
+		w.gz.Reset(w.ResponseWriter)
+	}
+	w.ResponseWriter.WriteHeader(code)
+}
+
+// Write writes p to the body, compressed when the status is 200.
+func (w *gzipResponse) Write(p []byte) (int, error) {
+	if !w.started {
+		w.WriteHeader(http.StatusOK)
+	}
+	if w.gz != nil {
+		return w.gz.Write(p)
+	}
+	return w.ResponseWriter.Write(p)
+}
+
+// close ends the gzip stream, if one was started, and frees its writer.
+func (w *gzipResponse) close() {
+	if w.gz == nil {
+		return
+	}
+	// The client may have gone; its error has already surfaced from Write.
+	_ = w.gz.Close()
+	w.writers.Put(w.gz)
+	w.gz = nil
 }

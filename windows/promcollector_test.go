@@ -2,20 +2,26 @@ package windows_test
 
 import (
 	"bytes"
+	"compress/gzip"
+	"errors"
 	"flag"
 	"fmt"
+	"io"
 	"math/rand/v2"
 	"net/http"
 	"net/http/httptest"
 	"os"
 	"os/exec"
+	"slices"
 	"strings"
 	"testing"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 	"github.com/prometheus/client_golang/prometheus/testutil"
+	dto "github.com/prometheus/client_model/go"
 	"github.com/prometheus/common/expfmt"
 
 	"github.com/classwatch/classwatch/windows"
@@ -93,21 +99,17 @@ func goldenTracker(t testing.TB) *windows.Tracker {
 	return tr
 }
 
-// newRegistry registers tr's collector on a pedantic registry, which also
-// checks every series against its descriptor.
-func newRegistry(t testing.TB, tr *windows.Tracker) *prometheus.Registry {
-	t.Helper()
-	reg := prometheus.NewPedanticRegistry()
-	if err := reg.Register(windows.NewCollector(tr, 0.95)); err != nil {
-		t.Fatal(err)
-	}
-	return reg
+// checked returns tr's gatherer behind prometheus.Gatherers, which checks
+// every series as a registry would (label names and values, duplicate
+// series, help and type) and fails the gather if one is wrong.
+func checked(tr *windows.Tracker) prometheus.Gatherer {
+	return prometheus.Gatherers{windows.NewGatherer(tr, 0.95)}
 }
 
-// exposition gathers reg and encodes it as Prometheus text.
-func exposition(t testing.TB, reg *prometheus.Registry) []byte {
+// exposition gathers g and encodes it as Prometheus text.
+func exposition(t testing.TB, g prometheus.Gatherer) []byte {
 	t.Helper()
-	mfs, err := reg.Gather()
+	mfs, err := g.Gather()
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -121,12 +123,12 @@ func exposition(t testing.TB, reg *prometheus.Registry) []byte {
 	return buf.Bytes()
 }
 
-// TestCollectorGolden compares a scrape with testdata/metrics/scrape.prom.
+// TestGathererGolden compares a scrape with testdata/metrics/scrape.prom.
 // The golden file's counts follow from the scenario above; its ratios and
 // intervals were checked independently against scikit-learn and
-// statsmodels by TestCollectorGoldenAgainstReference.
-func TestCollectorGolden(t *testing.T) {
-	reg := newRegistry(t, goldenTracker(t))
+// statsmodels by TestGathererGoldenAgainstReference.
+func TestGathererGolden(t *testing.T) {
+	reg := checked(goldenTracker(t))
 	if *updateMetrics {
 		if err := os.WriteFile(scrapeGolden, exposition(t, reg), 0o644); err != nil {
 			t.Fatal(err)
@@ -142,13 +144,13 @@ func TestCollectorGolden(t *testing.T) {
 	}
 }
 
-// TestCollectorGoldenAgainstReference recomputes every ratio of the golden
+// TestGathererGoldenAgainstReference recomputes every ratio of the golden
 // file from its counts with scikit-learn 1.2 (precision_recall_fscore_support,
 // balanced_accuracy_score, f1_score, multilabel_confusion_matrix) and
 // statsmodels 0.13 (proportion_confint, method="wilson"), Debian bookworm's
 // python3-sklearn and python3-statsmodels, and checks that exactly the
 // defined ratios are present.
-func TestCollectorGoldenAgainstReference(t *testing.T) {
+func TestGathererGoldenAgainstReference(t *testing.T) {
 	python := "/usr/bin/python3"
 	probe := exec.Command(python, "-c", "import sklearn, statsmodels")
 	if err := probe.Run(); err != nil {
@@ -164,8 +166,8 @@ func TestCollectorGoldenAgainstReference(t *testing.T) {
 	t.Logf("%s", out)
 }
 
-// TestCollectorPromtool lints a scrape with promtool check metrics.
-func TestCollectorPromtool(t *testing.T) {
+// TestGathererPromtool lints a scrape with promtool check metrics.
+func TestGathererPromtool(t *testing.T) {
 	promtool, err := exec.LookPath("promtool")
 	if err != nil {
 		if os.Getenv("CI") == "true" {
@@ -174,16 +176,16 @@ func TestCollectorPromtool(t *testing.T) {
 		t.Skip("promtool not installed")
 	}
 	cmd := exec.Command(promtool, "check", "metrics")
-	cmd.Stdin = bytes.NewReader(exposition(t, newRegistry(t, goldenTracker(t))))
+	cmd.Stdin = bytes.NewReader(exposition(t, checked(goldenTracker(t))))
 	out, err := cmd.CombinedOutput()
 	if err != nil || len(bytes.TrimSpace(out)) > 0 {
 		t.Errorf("promtool check metrics: %v\n%s", err, out)
 	}
 }
 
-// TestCollectorNoStaleSeries checks that figures which stop being defined
+// TestGathererNoStaleSeries checks that figures which stop being defined
 // disappear from the next scrape while the counts stay, zeros included.
-func TestCollectorNoStaleSeries(t *testing.T) {
+func TestGathererNoStaleSeries(t *testing.T) {
 	tr, err := windows.NewTracker(windows.TrackerOptions{
 		DefaultWindows: []windows.Window{{Name: "1h", Length: time.Hour}},
 	})
@@ -195,7 +197,7 @@ func TestCollectorNoStaleSeries(t *testing.T) {
 		Cells:     []store.CellDelta{{Model: "line-7", Bucket: t0, Actual: "dent", Predicted: "dent", N: 3}},
 		Predicted: []store.PredictedDelta{{Model: "line-7", Bucket: t0, Predicted: "dent", N: 3}},
 	}, map[string]time.Time{"line-7": t0})
-	reg := newRegistry(t, tr)
+	reg := checked(tr)
 
 	series := func(name string) int {
 		t.Helper()
@@ -232,9 +234,10 @@ classwatch_window_labeled{model="line-7",window="1h"} 0
 	}
 }
 
-// BenchmarkScrape measures one scrape of 50 models × 12 classes × 4
-// windows: Gather alone, and the whole /metrics response as text.
-func BenchmarkScrape(b *testing.B) {
+// randomTracker holds models × classes × 4 windows over three days of
+// 5-minute buckets, 20 random predictions per bucket, all labeled.
+func randomTracker(tb testing.TB, models, classes int) *windows.Tracker {
+	tb.Helper()
 	tr, err := windows.NewTracker(windows.TrackerOptions{
 		DefaultWindows: []windows.Window{
 			{Name: "1h", Length: time.Hour},
@@ -244,49 +247,233 @@ func BenchmarkScrape(b *testing.B) {
 		},
 	})
 	if err != nil {
-		b.Fatal(err)
+		tb.Fatal(err)
 	}
 	rng := rand.New(rand.NewPCG(1, 2))
-	classes := make([]string, 12)
-	for i := range classes {
-		classes[i] = fmt.Sprintf("class-%02d", i)
+	names := make([]string, classes)
+	for i := range names {
+		names[i] = fmt.Sprintf("class-%02d", i)
 	}
-	for m := range 50 {
+	for m := range models {
 		model := fmt.Sprintf("model-%02d", m)
-		tr.SetClasses(model, classes)
+		tr.SetClasses(model, names)
 		var ch store.Changes
 		for k := range 72 * 12 { // three days of 5m buckets
 			bucket := t0.Add(time.Duration(k) * 5 * time.Minute)
 			for range 20 {
-				a, p := classes[rng.IntN(12)], classes[rng.IntN(12)]
+				a, p := names[rng.IntN(classes)], names[rng.IntN(classes)]
 				ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: bucket, Actual: a, Predicted: p, N: 1})
 				ch.Predicted = append(ch.Predicted, store.PredictedDelta{Model: model, Bucket: bucket, Predicted: p, N: 2})
 			}
 		}
 		tr.Apply(ch, map[string]time.Time{model: t0.Add(72 * time.Hour)})
 	}
-	reg := prometheus.NewRegistry()
-	if err := reg.Register(windows.NewCollector(tr, 0.95)); err != nil {
-		b.Fatal(err)
-	}
-	b.Run("gather", func(b *testing.B) {
-		for b.Loop() {
-			if _, err := reg.Gather(); err != nil {
-				b.Fatal(err)
+	return tr
+}
+
+// TestGathererOrder checks that the gatherer's families come out exactly as
+// a registry would return them: prometheus.Gatherers checks every series
+// and sorts families by name and series by label values, so its output
+// differs from the gatherer's own if any series was out of order.
+func TestGathererOrder(t *testing.T) {
+	for name, tr := range map[string]*windows.Tracker{
+		"golden": goldenTracker(t),
+		"random": randomTracker(t, 12, 5),
+	} {
+		t.Run(name, func(t *testing.T) {
+			got := exposition(t, windows.NewGatherer(tr, 0.95))
+			want := exposition(t, checked(tr))
+			if !bytes.Equal(got, want) {
+				t.Errorf("gatherer's order differs from the registry's:\n%s", firstDiff(got, want))
 			}
+		})
+	}
+}
+
+// firstDiff shows the first line where got and want differ.
+func firstDiff(got, want []byte) string {
+	g, w := strings.Split(string(got), "\n"), strings.Split(string(want), "\n")
+	for i := range min(len(g), len(w)) {
+		if g[i] != w[i] {
+			return fmt.Sprintf("line %d:\n got %s\nwant %s", i+1, g[i], w[i])
 		}
-		b.ReportMetric(b.Elapsed().Seconds()*1e3/float64(b.N), "ms/op")
-	})
-	b.Run("http", func(b *testing.B) {
-		h := promhttp.HandlerFor(reg, promhttp.HandlerOpts{ErrorHandling: promhttp.HTTPErrorOnError})
-		req := httptest.NewRequest(http.MethodGet, "/metrics", nil)
-		for b.Loop() {
+	}
+	return fmt.Sprintf("got %d lines, want %d", len(g), len(w))
+}
+
+// TestMergeGatherers checks that families of several gatherers are merged
+// by name, and that a name gathered twice is reported and kept once.
+func TestMergeGatherers(t *testing.T) {
+	reg := prometheus.NewPedanticRegistry()
+	up := prometheus.NewGauge(prometheus.GaugeOpts{Name: "classwatch_window_zzz_test", Help: "A test gauge."})
+	early := prometheus.NewGauge(prometheus.GaugeOpts{Name: "aaa_test", Help: "A test gauge."})
+	reg.MustRegister(up, early)
+	tr := goldenTracker(t)
+
+	mfs, err := windows.MergeGatherers(windows.NewGatherer(tr, 0.95), reg).Gather()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var names []string
+	for _, mf := range mfs {
+		names = append(names, mf.GetName())
+	}
+	if !slices.IsSorted(names) {
+		t.Errorf("merged families not sorted by name: %v", names)
+	}
+	if got, want := len(names), 2+19; got != want {
+		t.Errorf("merged %d families, want %d: %v", got, want, names)
+	}
+
+	dup := prometheus.NewRegistry()
+	dup.MustRegister(prometheus.NewGauge(prometheus.GaugeOpts{Name: "classwatch_confusion", Help: "Another help."}))
+	mfs, err = windows.MergeGatherers(windows.NewGatherer(tr, 0.95), dup).Gather()
+	if err == nil || !strings.Contains(err.Error(), "classwatch_confusion gathered twice") {
+		t.Errorf("error = %v, want classwatch_confusion gathered twice", err)
+	}
+	for _, mf := range mfs {
+		if mf.GetName() == "classwatch_confusion" && len(mf.Metric) == 1 {
+			t.Error("the second classwatch_confusion family was kept, want the first")
+		}
+	}
+}
+
+// TestMetricsHandler checks content and encoding negotiation against
+// client_golang v1.25's own promhttp handler serving the same families.
+func TestMetricsHandler(t *testing.T) {
+	g := checked(goldenTracker(t))
+	opts := promhttp.HandlerOpts{ErrorHandling: promhttp.HTTPErrorOnError, EnableOpenMetrics: true}
+	ours, theirs := windows.MetricsHandler(g, opts), promhttp.HandlerFor(g, opts)
+
+	for _, tc := range []struct {
+		accept, encoding string
+		gzip             bool
+	}{
+		{accept: "", encoding: "", gzip: false},
+		{accept: prometheusAccept, encoding: "gzip", gzip: true},
+		{accept: "text/plain;version=0.0.4", encoding: "gzip, deflate", gzip: true},
+		{accept: prometheusAccept, encoding: "gzip;q=0, identity", gzip: false},
+		{accept: prometheusAccept, encoding: "*", gzip: true},
+		{accept: prometheusAccept, encoding: "*;q=0.5, gzip;q=0", gzip: false},
+		{accept: prometheusAccept, encoding: "GZIP;Q=0.2", gzip: true},
+	} {
+		serve := func(h http.Handler) (*httptest.ResponseRecorder, []byte) {
+			req := httptest.NewRequest(http.MethodGet, "/metrics", nil)
+			req.Header.Set("Accept", tc.accept)
+			req.Header.Set("Accept-Encoding", tc.encoding)
 			rec := httptest.NewRecorder()
 			h.ServeHTTP(rec, req)
-			if rec.Code != http.StatusOK {
-				b.Fatal(rec.Code)
+			body := rec.Body.Bytes()
+			if rec.Header().Get("Content-Encoding") == "gzip" {
+				zr, err := gzip.NewReader(bytes.NewReader(body))
+				if err != nil {
+					t.Fatal(err)
+				}
+				if body, err = io.ReadAll(zr); err != nil {
+					t.Fatal(err)
+				}
 			}
+			return rec, body
 		}
-		b.ReportMetric(b.Elapsed().Seconds()*1e3/float64(b.N), "ms/op")
-	})
+		rec, got := serve(ours)
+		ref, want := serve(theirs)
+		if rec.Code != http.StatusOK {
+			t.Fatalf("Accept-Encoding %q: status %d", tc.encoding, rec.Code)
+		}
+		if got, want := rec.Header().Get("Content-Encoding") == "gzip", tc.gzip; got != want {
+			t.Errorf("Accept-Encoding %q: gzip = %v, want %v", tc.encoding, got, want)
+		}
+		if got, want := rec.Header().Get("Content-Type"), ref.Header().Get("Content-Type"); got != want {
+			t.Errorf("Accept %q: Content-Type %q, want %q", tc.accept, got, want)
+		}
+		if !bytes.Equal(got, want) {
+			t.Errorf("Accept %q, Accept-Encoding %q: body differs from promhttp's:\n%s", tc.accept, tc.encoding, firstDiff(got, want))
+		}
+	}
+
+	// An error page goes out uncompressed.
+	failing := prometheus.GathererFunc(func() ([]*dto.MetricFamily, error) { return nil, errors.New("store gone") })
+	req := httptest.NewRequest(http.MethodGet, "/metrics", nil)
+	req.Header.Set("Accept-Encoding", "gzip")
+	rec := httptest.NewRecorder()
+	windows.MetricsHandler(failing, opts).ServeHTTP(rec, req)
+	if got, want := rec.Code, http.StatusInternalServerError; got != want {
+		t.Errorf("failing gather: status %d, want %d", got, want)
+	}
+	if got := rec.Header().Get("Content-Encoding"); got != "" {
+		t.Errorf("failing gather: Content-Encoding %q, want none", got)
+	}
+	if !strings.Contains(rec.Body.String(), "store gone") {
+		t.Errorf("failing gather: body %q does not name the error", rec.Body.String())
+	}
 }
+
+// BenchmarkScrape measures one scrape of 50 models × 12 classes × 4
+// windows (about 52,000 series) as the daemon serves it, next to a
+// registry with the Go and process collectors: Gather alone, and a GET of
+// /metrics over loopback HTTP as plain text and as Prometheus asks for it
+// (OpenMetrics, gzip). Besides the mean it reports the median and the
+// slowest scrape.
+func BenchmarkScrape(b *testing.B) {
+	tr := randomTracker(b, 50, 12)
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	metrics := windows.MergeGatherers(reg, windows.NewGatherer(tr, 0.95))
+	h := windows.MetricsHandler(metrics, promhttp.HandlerOpts{ErrorHandling: promhttp.HTTPErrorOnError, EnableOpenMetrics: true})
+	b.Run("gather", func(b *testing.B) {
+		latency(b, func() {
+			if _, err := metrics.Gather(); err != nil {
+				b.Fatal(err)
+			}
+		})
+	})
+	srv := httptest.NewServer(h)
+	defer srv.Close()
+	scrape := func(b *testing.B, accept, encoding string) {
+		req, err := http.NewRequest(http.MethodGet, srv.URL, nil)
+		if err != nil {
+			b.Fatal(err)
+		}
+		req.Header.Set("Accept", accept)
+		// Set by hand, Accept-Encoding also stops the client from
+		// decompressing: the time is the server's, plus reading the bytes.
+		req.Header.Set("Accept-Encoding", encoding)
+		var size int64
+		latency(b, func() {
+			resp, err := srv.Client().Do(req)
+			if err != nil {
+				b.Fatal(err)
+			}
+			defer resp.Body.Close()
+			if size, err = io.Copy(io.Discard, resp.Body); err != nil {
+				b.Fatal(err)
+			}
+			if resp.StatusCode != http.StatusOK || resp.Header.Get("Content-Encoding") != encoding {
+				b.Fatal(resp.Status, resp.Header)
+			}
+		})
+		b.ReportMetric(float64(size)/1e6, "MB/scrape")
+	}
+	b.Run("http", func(b *testing.B) { scrape(b, "", "") })
+	b.Run("prometheus", func(b *testing.B) { scrape(b, prometheusAccept, "gzip") })
+}
+
+// latency runs op in a benchmark loop and reports its mean, median and
+// slowest run in milliseconds.
+func latency(b *testing.B, op func()) {
+	var runs []time.Duration
+	for b.Loop() {
+		start := time.Now()
+		op()
+		runs = append(runs, time.Since(start))
+	}
+	slices.Sort(runs)
+	ms := func(d time.Duration) float64 { return d.Seconds() * 1e3 }
+	b.ReportMetric(ms(b.Elapsed())/float64(b.N), "ms/op")
+	b.ReportMetric(ms(runs[len(runs)/2]), "p50-ms")
+	b.ReportMetric(ms(runs[len(runs)-1]), "max-ms")
+}
+
+// prometheusAccept is the Accept header Prometheus sends when scraping
+// (from memory of its scrape code; OpenMetrics preferred, text accepted).
+const prometheusAccept = "application/openmetrics-text;version=1.0.0,application/openmetrics-text;version=0.0.1;q=0.75,text/plain;version=0.0.4;q=0.5,*/*;q=0.1"

@@ -128,7 +128,6 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 	if err != nil {
 		return d, fmt.Errorf("build windows: %w", err)
 	}
-	reg.MustRegister(windows.NewCollector(d.tracker, cfg.Confidence))
 
 	copts := cfg.collectorOptions()
 	copts.Store = d.store
@@ -181,7 +180,11 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 	d.collector.Register(mux)
 	api.New(api.Options{Store: d.store, Tracker: d.tracker, Confidence: cfg.Confidence, Logger: log}).Register(mux)
 	d.alerts.Register(mux)
-	mux.Handle("GET /metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{
+	// The window families (~52,000 series for 50 models × 12 classes × 4
+	// windows) bypass the registry's per-series checks; MergeGatherers
+	// reports a family name that both define.
+	metrics := windows.MergeGatherers(reg, windows.NewGatherer(d.tracker, cfg.Confidence))
+	mux.Handle("GET /metrics", windows.MetricsHandler(metrics, promhttp.HandlerOpts{
 		ErrorHandling:     promhttp.ContinueOnError,
 		ErrorLog:          slog.NewLogLogger(log.Handler(), slog.LevelError),
 		EnableOpenMetrics: true,
