@@ -164,6 +164,8 @@ type Collector struct {
 	metrics      *metrics
 	// slots holds one element per running batch (MaxInFlight capacity).
 	slots chan struct{}
+	// batches recycles the *batch of finished ingests.
+	batches sync.Pool
 
 	// ensureMu serializes registration so that two batches bringing the
 	// same new class register it once and RegisterFunc sees each growth

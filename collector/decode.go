@@ -7,10 +7,8 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"maps"
 	"math"
 	"reflect"
-	"slices"
 	"strings"
 	"time"
 
@@ -232,10 +230,15 @@ type labelLine struct {
 // parsePrediction decodes and checks one prediction line, with At defaulted
 // to now. Bucket and the model's classes are left to the caller.
 func parsePrediction(data []byte, now time.Time, maxFuture time.Duration) (store.Prediction, error) {
-	var pl predictionLine
-	if err := decodeStrict(data, &pl); err != nil {
-		// The model, when it could be read, still names the line in metrics.
-		return store.Prediction{Model: pl.Model}, err
+	pl, ok := scanPrediction(string(data))
+	if !ok {
+		// A variable of its own, so that only this path allocates it.
+		var full predictionLine
+		if err := decodeStrict(data, &full); err != nil {
+			// The model, when it could be read, still names the line in metrics.
+			return store.Prediction{Model: full.Model}, err
+		}
+		pl = full
 	}
 	p := store.Prediction{Model: pl.Model, ID: pl.ID, Predicted: pl.Predicted, Segment: pl.Segment, Scores: pl.Scores}
 	if err := checkKey(pl.Model, pl.ID); err != nil {
@@ -250,25 +253,44 @@ func parsePrediction(data []byte, now time.Time, maxFuture time.Duration) (store
 	if len(pl.Segment) > maxSegmentBytes {
 		return p, fmt.Errorf(`"segment" is longer than %d bytes`, maxSegmentBytes)
 	}
-	for _, k := range slices.Sorted(maps.Keys(pl.Scores)) {
-		v := pl.Scores[k]
-		if err := ValidClassName(k); err != nil {
-			return p, fmt.Errorf(`"scores": %w`, err)
-		}
-		if math.IsNaN(v) || v < 0 || v > 1 {
-			return p, fmt.Errorf(`"scores": %q is %v, outside [0, 1]`, k, v)
-		}
+	if err := checkScores(pl.Scores); err != nil {
+		return p, err
 	}
 	var err error
 	p.At, p.AtDefaulted, err = parseAt(pl.At, now, maxFuture)
 	return p, err
 }
 
+// checkScores checks score names and values. Of several bad scores it
+// names the one whose class sorts first, so that the message does not
+// depend on map order.
+func checkScores(scores map[string]float64) error {
+	bad, found := "", false
+	for k, v := range scores {
+		if ValidClassName(k) != nil || math.IsNaN(v) || v < 0 || v > 1 {
+			if !found || k < bad {
+				bad, found = k, true
+			}
+		}
+	}
+	if !found {
+		return nil
+	}
+	if err := ValidClassName(bad); err != nil {
+		return fmt.Errorf(`"scores": %w`, err)
+	}
+	return fmt.Errorf(`"scores": %q is %v, outside [0, 1]`, bad, scores[bad])
+}
+
 // parseLabel decodes and checks one label line, with At defaulted to now.
 func parseLabel(data []byte, now time.Time, maxFuture time.Duration) (store.Label, error) {
-	var ll labelLine
-	if err := decodeStrict(data, &ll); err != nil {
-		return store.Label{Model: ll.Model}, err
+	ll, ok := scanLabel(string(data))
+	if !ok {
+		var full labelLine
+		if err := decodeStrict(data, &full); err != nil {
+			return store.Label{Model: full.Model}, err
+		}
+		ll = full
 	}
 	l := store.Label{Model: ll.Model, ID: ll.ID, Actual: ll.Actual}
 	if err := checkKey(ll.Model, ll.ID); err != nil {

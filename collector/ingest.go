@@ -5,9 +5,10 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"maps"
 	"slices"
 	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store"
@@ -97,31 +98,56 @@ type ingestRun struct {
 	progress      func(Progress)
 }
 
-// item is one parsed, valid-so-far line.
+// item is one parsed, valid-so-far line; its prediction or label is at
+// the same index of the batch's preds or labels.
 type item struct {
 	line int
 	// classes names every class the line uses: predicted then score keys
 	// (sorted), or actual.
 	classes []string
-	pred    store.Prediction
-	label   store.Label
-}
-
-func (it *item) model(k kind) string {
-	if k == labels {
-		return it.label.Model
-	}
-	return it.pred.Model
 }
 
 // batch gathers the lines of one transaction.
 type batch struct {
 	first, last int
 	lines       int // non-blank lines
-	items       []item
-	rejected    []LineError
+	// items and, by kind, preds or labels hold the valid-so-far lines.
+	items  []item
+	preds  []store.Prediction
+	labels []store.Label
+	// classBuf backs the items' class lists.
+	classBuf []string
+	rejected []LineError
 	// rejectedModels holds, per rejected line in order, the model it named.
 	rejectedModels []string
+}
+
+// model returns the model of item i.
+func (b *batch) model(i int, k kind) string {
+	if k == labels {
+		return b.labels[i].Model
+	}
+	return b.preds[i].Model
+}
+
+// move copies item src over item dst, to filter the items in place.
+func (b *batch) move(dst, src int, k kind) {
+	b.items[dst] = b.items[src]
+	if k == labels {
+		b.labels[dst] = b.labels[src]
+	} else {
+		b.preds[dst] = b.preds[src]
+	}
+}
+
+// truncate keeps the first n items.
+func (b *batch) truncate(n int, k kind) {
+	b.items = b.items[:n]
+	if k == labels {
+		b.labels = b.labels[:n]
+	} else {
+		b.preds = b.preds[:n]
+	}
 }
 
 func (b *batch) reject(line int, model, reason string, err error) {
@@ -155,7 +181,7 @@ func (c *Collector) ingestFile(ctx context.Context, r io.Reader, opts BatchOptio
 // classes, commit, count.
 func (c *Collector) ingest(ctx context.Context, src lineSource, run ingestRun) (Result, error) {
 	res := Result{Rejected: []LineError{}}
-	b := batch{}
+	b := c.getBatch()
 	now := c.now()
 	for {
 		line, data, err := src.next()
@@ -169,7 +195,7 @@ func (c *Collector) ingest(ctx context.Context, src lineSource, run ingestRun) (
 		case err != nil:
 			return res, err
 		default:
-			c.parse(&b, run.kind, line, data, now)
+			c.parse(b, run.kind, line, data, now)
 		}
 		if b.lines == 0 {
 			b.first = line
@@ -177,41 +203,82 @@ func (c *Collector) ingest(ctx context.Context, src lineSource, run ingestRun) (
 		b.lines++
 		b.last = line
 		if run.batchLines > 0 && b.lines >= run.batchLines {
-			if err := c.flush(ctx, &b, run, now, &res); err != nil {
+			if err := c.flush(ctx, b, run, now, &res); err != nil {
 				return res, err
 			}
-			b, now = batch{}, c.now()
+			b.reset()
+			now = c.now()
 		}
 	}
 	if b.lines > 0 {
-		if err := c.flush(ctx, &b, run, now, &res); err != nil {
+		if err := c.flush(ctx, b, run, now, &res); err != nil {
 			return res, err
 		}
 	}
+	b.reset()
+	c.batches.Put(b)
 	return res, nil
+}
+
+// getBatch returns an empty batch, with the slices of a finished one when
+// the pool holds one: a request of thousands of lines would otherwise grow
+// them from nothing each time.
+func (c *Collector) getBatch() *batch {
+	if b, ok := c.batches.Get().(*batch); ok {
+		return b
+	}
+	return &batch{}
+}
+
+// reset empties b for the next batch, keeping its slices but none of the
+// strings they pointed to.
+func (b *batch) reset() {
+	clear(b.items[:cap(b.items)])
+	clear(b.preds[:cap(b.preds)])
+	clear(b.labels[:cap(b.labels)])
+	clear(b.classBuf[:cap(b.classBuf)])
+	*b = batch{items: b.items[:0], preds: b.preds[:0], labels: b.labels[:0], classBuf: b.classBuf[:0]}
 }
 
 // parse decodes one line into the batch, as an item or a rejection.
 func (c *Collector) parse(b *batch, k kind, line int, data []byte, now time.Time) {
-	it := item{line: line}
-	var err error
 	if k == labels {
-		it.label, err = parseLabel(data, now, c.limits.MaxFuture)
-		it.classes = []string{it.label.Actual}
-	} else {
-		it.pred, err = parsePrediction(data, now, c.limits.MaxFuture)
-		it.classes = append(make([]string, 0, 1+len(it.pred.Scores)), it.pred.Predicted)
-		for _, s := range slices.Sorted(maps.Keys(it.pred.Scores)) {
-			if s != it.pred.Predicted {
-				it.classes = append(it.classes, s)
-			}
+		l, err := parseLabel(data, now, c.limits.MaxFuture)
+		if err != nil {
+			b.reject(line, l.Model, reasonInvalid, err)
+			return
 		}
-	}
-	if err != nil {
-		b.reject(line, it.model(k), reasonInvalid, err)
+		b.labels = append(b.labels, l)
+		b.items = append(b.items, item{line: line, classes: b.classList(l.Actual, nil)})
 		return
 	}
-	b.items = append(b.items, it)
+	p, err := parsePrediction(data, now, c.limits.MaxFuture)
+	if err != nil {
+		b.reject(line, p.Model, reasonInvalid, err)
+		return
+	}
+	b.preds = append(b.preds, p)
+	b.items = append(b.items, item{line: line, classes: b.classList(p.Predicted, p.Scores)})
+}
+
+// classList returns first followed by the other keys of scores, sorted,
+// in space taken from classBuf.
+func (b *batch) classList(first string, scores map[string]float64) []string {
+	if cap(b.classBuf)-len(b.classBuf) < 1+len(scores) {
+		// Earlier lists keep the old array; a reused batch starts with the
+		// largest one.
+		b.classBuf = make([]string, 0, max(1024, 2*cap(b.classBuf), 1+len(scores)))
+	}
+	start := len(b.classBuf)
+	b.classBuf = append(b.classBuf, first)
+	for s := range scores {
+		if s != first {
+			b.classBuf = append(b.classBuf, s)
+		}
+	}
+	list := b.classBuf[start:len(b.classBuf):len(b.classBuf)]
+	slices.Sort(list[1:])
+	return list
 }
 
 // resolve checks each item's token permission, model and classes,
@@ -221,15 +288,17 @@ func (c *Collector) resolve(ctx context.Context, b *batch, k kind, tok *tokenHas
 	var order []string
 	needs := map[string][]string{}
 	needed := map[string]map[string]bool{}
-	allowed := b.items[:0:0]
-	for _, it := range b.items {
-		m := it.model(k)
+	states := stateCache{c: c}
+	allowed := 0
+	for i, it := range b.items {
+		m := b.model(i, k)
 		if tok != nil && !tok.allows(m) {
 			b.reject(it.line, m, reasonForbidden, fmt.Errorf("token %q may not write model %q", tok.name, m))
 			continue
 		}
-		allowed = append(allowed, it)
-		st := c.state(m)
+		b.move(allowed, i, k)
+		allowed++
+		st := states.get(m)
 		for _, cl := range it.classes {
 			if st != nil && st.set[cl] {
 				continue
@@ -244,7 +313,7 @@ func (c *Collector) resolve(ctx context.Context, b *batch, k kind, tok *tokenHas
 			}
 		}
 	}
-	b.items = allowed
+	b.truncate(allowed, k)
 
 	refused := map[string]map[string]bool{}
 	for _, m := range order {
@@ -258,10 +327,12 @@ func (c *Collector) resolve(ctx context.Context, b *batch, k kind, tok *tokenHas
 		refused[m] = r
 	}
 
-	kept := b.items[:0]
-	for _, it := range b.items {
-		m := it.model(k)
-		if err := c.check(it, m, refused[m]); err != nil {
+	states = stateCache{c: c}
+	kept := 0
+	for i, it := range b.items {
+		m := b.model(i, k)
+		st := states.get(m)
+		if err := c.check(st, it.classes, m, refused[m]); err != nil {
 			reason := reasonUnknownClass
 			var ce *classError
 			switch {
@@ -276,12 +347,30 @@ func (c *Collector) resolve(ctx context.Context, b *batch, k kind, tok *tokenHas
 			continue
 		}
 		if k == predictions {
-			it.pred.Bucket = windows.BucketStart(it.pred.At, c.state(m).policy.Bucket)
+			p := &b.preds[i]
+			p.Bucket = windows.BucketStart(p.At, st.policy.Bucket)
 		}
-		kept = append(kept, it)
+		b.move(kept, i, k)
+		kept++
 	}
-	b.items = kept
+	b.truncate(kept, k)
 	return nil
+}
+
+// stateCache memoizes Collector.state over one pass through a batch, whose
+// lines mostly name a single model.
+type stateCache struct {
+	c     *Collector
+	model string
+	st    *modelState
+	valid bool
+}
+
+func (s *stateCache) get(model string) *modelState {
+	if !s.valid || model != s.model {
+		s.model, s.st, s.valid = model, s.c.state(model), true
+	}
+	return s.st
 }
 
 // classError is a line naming a class its model does not have.
@@ -296,9 +385,9 @@ func (e *classError) Error() string { return e.msg }
 // It cannot collide with a class: class names are never empty.
 const modelRefused = ""
 
-// check reports whether an item's model and classes are registered.
-func (c *Collector) check(it item, model string, refused map[string]bool) error {
-	st := c.state(model)
+// check reports whether an item's model and classes are registered; st is
+// the model's state, nil if unknown.
+func (c *Collector) check(st *modelState, classes []string, model string, refused map[string]bool) error {
 	if st == nil {
 		if refused[modelRefused] {
 			return fmt.Errorf("unknown model %q: registering it would pass max_models (%d): %w", model, c.maxModels, errTooManyModels)
@@ -310,7 +399,7 @@ func (c *Collector) check(it item, model string, refused map[string]bool) error 
 		}
 		return fmt.Errorf("unknown model %q", model)
 	}
-	for _, cl := range it.classes {
+	for _, cl := range classes {
 		switch {
 		case st.set[cl]:
 		case refused[cl]:
@@ -388,10 +477,7 @@ func (c *Collector) commit(txFunc func() (store.Changes, map[string]time.Time, e
 }
 
 func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Time, res *Result) (store.Changes, map[string]time.Time, error) {
-	in := make([]store.Prediction, len(b.items))
-	for i, it := range b.items {
-		in[i] = it.pred
-	}
+	in := b.preds
 	out, err := c.store.IngestPredictions(ctx, in, now)
 	if err != nil {
 		return store.Changes{}, nil, fmt.Errorf("ingest predictions: %w", err)
@@ -400,8 +486,9 @@ func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Ti
 		return store.Changes{}, nil, fmt.Errorf("ingest predictions: %d outcomes for %d lines", len(out.Outcomes), len(in))
 	}
 	latest := map[string]time.Time{}
+	received := counterCache{vec: c.metrics.predictionsReceived}
 	for i, o := range out.Outcomes {
-		p := in[i]
+		p := &in[i]
 		switch o {
 		case store.PredictionStored:
 			res.Accepted++
@@ -415,16 +502,28 @@ func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Ti
 				fmt.Errorf("prediction %s already recorded with different content; the first one stands", p.ID))
 			continue
 		}
-		c.metrics.predictionsReceived.WithLabelValues(p.Model).Inc()
+		received.get(p.Model).Inc()
 	}
 	return out.Changes, latest, nil
 }
 
-func (c *Collector) commitLabels(ctx context.Context, b *batch, now time.Time, res *Result) (store.Changes, error) {
-	in := make([]store.Label, len(b.items))
-	for i, it := range b.items {
-		in[i] = it.label
+// counterCache memoizes the counter of one label value over a batch, whose
+// lines mostly name a single model.
+type counterCache struct {
+	vec   *prometheus.CounterVec
+	value string
+	ctr   prometheus.Counter
+}
+
+func (cc *counterCache) get(value string) prometheus.Counter {
+	if cc.ctr == nil || value != cc.value {
+		cc.value, cc.ctr = value, cc.vec.WithLabelValues(value)
 	}
+	return cc.ctr
+}
+
+func (c *Collector) commitLabels(ctx context.Context, b *batch, now time.Time, res *Result) (store.Changes, error) {
+	in := b.labels
 	out, err := c.store.IngestLabels(ctx, in, now)
 	if err != nil {
 		return store.Changes{}, fmt.Errorf("ingest labels: %w", err)
@@ -432,13 +531,21 @@ func (c *Collector) commitLabels(ctx context.Context, b *batch, now time.Time, r
 	if len(out.Outcomes) != len(in) {
 		return store.Changes{}, fmt.Errorf("ingest labels: %d outcomes for %d lines", len(out.Outcomes), len(in))
 	}
+	type result struct {
+		model   string
+		outcome store.LabelOutcome
+	}
+	received := map[result]int{}
 	for i, o := range out.Outcomes {
 		if o == store.LabelDuplicate {
 			res.Duplicates++
 		} else {
 			res.Accepted++
 		}
-		c.metrics.labelsReceived.WithLabelValues(in[i].Model, o.String()).Inc()
+		received[result{in[i].Model, o}]++
+	}
+	for r, n := range received {
+		c.metrics.labelsReceived.WithLabelValues(r.model, r.outcome.String()).Add(float64(n))
 	}
 	return out.Changes, nil
 }
