@@ -116,42 +116,14 @@ func (t *tally) write(ctx context.Context, tx conn) error {
 // changes sums the increments over segments into net deltas, leaving out
 // those that cancelled, ordered by model, bucket and class names.
 func (t *tally) changes(names map[int32]string) store.Changes {
-	type ck struct {
-		model             int32
-		bucket            int64
-		actual, predicted string
-	}
-	type pk struct {
-		model     int32
-		bucket    int64
-		predicted string
-	}
-	cells := map[ck]int64{}
+	var cs store.ChangeSet
 	for k, n := range t.cells {
-		cells[ck{k.model, k.bucket, k.actual, k.predicted}] += n
+		cs.AddCell(names[k.model], time.UnixMicro(k.bucket), k.actual, k.predicted, n)
 	}
-	pred := map[pk]int64{}
 	for k, n := range t.predicted {
-		pred[pk{k.model, k.bucket, k.predicted}] += n
+		cs.AddPredicted(names[k.model], time.UnixMicro(k.bucket), k.predicted, n)
 	}
-	var out store.Changes
-	for k, n := range cells {
-		if n != 0 {
-			out.Cells = append(out.Cells, store.CellDelta{Model: names[k.model], Bucket: time.UnixMicro(k.bucket).UTC(), Actual: k.actual, Predicted: k.predicted, N: n})
-		}
-	}
-	for k, n := range pred {
-		if n != 0 {
-			out.Predicted = append(out.Predicted, store.PredictedDelta{Model: names[k.model], Bucket: time.UnixMicro(k.bucket).UTC(), Predicted: k.predicted, N: n})
-		}
-	}
-	slices.SortFunc(out.Cells, func(x, y store.CellDelta) int {
-		return cmp.Or(strings.Compare(x.Model, y.Model), x.Bucket.Compare(y.Bucket), strings.Compare(x.Actual, y.Actual), strings.Compare(x.Predicted, y.Predicted))
-	})
-	slices.SortFunc(out.Predicted, func(x, y store.PredictedDelta) int {
-		return cmp.Or(strings.Compare(x.Model, y.Model), x.Bucket.Compare(y.Bucket), strings.Compare(x.Predicted, y.Predicted))
-	})
-	return out
+	return cs.Changes()
 }
 
 func comparePredKey(x, y predKey) int {

@@ -1,7 +1,6 @@
 package sqlitestore
 
 import (
-	"cmp"
 	"context"
 	"database/sql"
 	"encoding/json"
@@ -650,40 +649,12 @@ func (a *accumulator) changes() store.Changes {
 	for name, id := range a.names {
 		names[id] = name
 	}
-	type ck struct {
-		model             int64
-		bucket            int64
-		actual, predicted string
-	}
-	type pk struct {
-		model     int64
-		bucket    int64
-		predicted string
-	}
-	cells := map[ck]int64{}
+	var cs store.ChangeSet
 	for k, n := range a.cells {
-		cells[ck{k.model, k.bucket, k.actual, k.predicted}] += n
+		cs.AddCell(names[k.model], fromMicros(k.bucket), k.actual, k.predicted, n)
 	}
-	pred := map[pk]int64{}
 	for k, n := range a.predicted {
-		pred[pk{k.model, k.bucket, k.predicted}] += n
+		cs.AddPredicted(names[k.model], fromMicros(k.bucket), k.predicted, n)
 	}
-	var out store.Changes
-	for k, n := range cells {
-		if n != 0 {
-			out.Cells = append(out.Cells, store.CellDelta{Model: names[k.model], Bucket: fromMicros(k.bucket), Actual: k.actual, Predicted: k.predicted, N: n})
-		}
-	}
-	for k, n := range pred {
-		if n != 0 {
-			out.Predicted = append(out.Predicted, store.PredictedDelta{Model: names[k.model], Bucket: fromMicros(k.bucket), Predicted: k.predicted, N: n})
-		}
-	}
-	slices.SortFunc(out.Cells, func(x, y store.CellDelta) int {
-		return cmp.Or(cmp.Compare(x.Model, y.Model), x.Bucket.Compare(y.Bucket), cmp.Compare(x.Actual, y.Actual), cmp.Compare(x.Predicted, y.Predicted))
-	})
-	slices.SortFunc(out.Predicted, func(x, y store.PredictedDelta) int {
-		return cmp.Or(cmp.Compare(x.Model, y.Model), x.Bucket.Compare(y.Bucket), cmp.Compare(x.Predicted, y.Predicted))
-	})
-	return out
+	return cs.Changes()
 }
