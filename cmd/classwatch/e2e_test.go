@@ -13,7 +13,6 @@ import (
 	"os"
 	"os/exec"
 	"path/filepath"
-	"runtime"
 	"slices"
 	"strings"
 	"sync"
@@ -265,8 +264,8 @@ func loadE2EFixture(tb testing.TB) e2eFixture {
 func buildBinary(tb testing.TB) string {
 	tb.Helper()
 	bin := filepath.Join(tb.TempDir(), "classwatch")
-	goTool := filepath.Join(runtime.GOROOT(), "bin", "go")
-	cmd := exec.Command(goTool, "build", "-o", bin, ".")
+	// "go test" runs with its own go command first on PATH.
+	cmd := exec.Command("go", "build", "-o", bin, ".")
 	if out, err := cmd.CombinedOutput(); err != nil {
 		tb.Fatalf("go build: %v\n%s", err, out)
 	}
