@@ -1,6 +1,7 @@
 package windows
 
 import (
+	"cmp"
 	"context"
 	"errors"
 	"fmt"
@@ -73,8 +74,15 @@ type TrackerOptions struct {
 // entered, and buckets older than W minus the longest window span are
 // dropped. The watermark never moves back, so a dropped bucket can never
 // re-enter a window, and a late label correction for such a bucket is
-// ignored. Memory per model is about (n²+n)·8 bytes per non-empty bucket for
-// n classes.
+// ignored.
+//
+// A bucket holds few labeled predictions, so most of its n² cells are zero:
+// buckets keep only their non-zero cells and predicted counts, 16 bytes
+// each plus about 40 bytes of map entry per non-empty bucket, while each
+// window's sum stays a dense Matrix of (n²+n)·8 bytes for n classes, which
+// is what views read. A bucket busy enough to fill all n²+n counts costs
+// twice its dense size; with 12 classes that takes hundreds of labeled
+// predictions in one bucket.
 //
 // # Several replicas, and counting each commit once
 //
@@ -505,16 +513,61 @@ func (t *Tracker) current(model string) (st *modelState, unlock func(), ok bool)
 	return st, t.mu.Unlock, true
 }
 
-// bucketCounts are one bucket's deltas, laid out as a Matrix's cells.
-type bucketCounts struct {
-	cells []int64
-	pred  []int64
+// bucketCount is one non-zero count of a bucket: cell (actual, predicted),
+// or, when actual is predictedOnly, the number of predictions of class
+// predicted. Class indices, not a dense cell index, name the cell, so an
+// entry stays valid when the class list grows.
+type bucketCount struct {
+	actual, predicted int32
+	n                 int64
+}
+
+// predictedOnly marks a bucketCount as a predicted count; it sorts before
+// every cell.
+const predictedOnly = -1
+
+// bucketCounts are one bucket's non-zero counts, sorted by (actual,
+// predicted). Cells and predicted counts share one slice to keep a bucket
+// to one allocation.
+type bucketCounts []bucketCount
+
+// add adds n to the count of (actual, predicted), dropping it when it comes
+// to zero, and returns the updated slice.
+func (b bucketCounts) add(actual, predicted int32, n int64) bucketCounts {
+	i, found := slices.BinarySearchFunc(b, bucketCount{actual: actual, predicted: predicted}, compareCounts)
+	switch {
+	case !found:
+		return slices.Insert(b, i, bucketCount{actual: actual, predicted: predicted, n: n})
+	case b[i].n+n == 0:
+		return slices.Delete(b, i, i+1)
+	}
+	b[i].n += n
+	return b
+}
+
+// compareCounts orders counts by actual, then predicted class index, which
+// puts predicted counts first and cells in a Matrix's row-major order.
+func compareCounts(x, y bucketCount) int {
+	if c := cmp.Compare(x.actual, y.actual); c != 0 {
+		return c
+	}
+	return cmp.Compare(x.predicted, y.predicted)
 }
 
 // windowSum is a window's running sum over its buckets.
 type windowSum struct {
 	m    *Matrix
 	pred []int64
+}
+
+// add adds n to cell (actual, predicted), or to the predicted count of
+// predicted when actual is predictedOnly.
+func (sum *windowSum) add(actual, predicted int, n int64) {
+	if actual == predictedOnly {
+		sum.pred[predicted] += n
+		return
+	}
+	sum.m.Add(actual, predicted, n)
 }
 
 // modelState is one model's rolling state. Methods need the tracker's lock.
@@ -528,15 +581,15 @@ type modelState struct {
 	latest  time.Time
 	// wm is the watermark the sums are current for; zero until the first.
 	wm      time.Time
-	buckets map[int64]*bucketCounts // by bucket start, Unix nanoseconds
-	sums    []windowSum             // in opts.Windows order
+	buckets map[int64]bucketCounts // by bucket start, Unix nanoseconds; never empty
+	sums    []windowSum            // in opts.Windows order
 }
 
 func newModelState(opts ModelOptions) *modelState {
 	st := &modelState{
 		opts:    opts,
 		index:   make(map[string]int),
-		buckets: make(map[int64]*bucketCounts),
+		buckets: make(map[int64]bucketCounts),
 		sums:    make([]windowSum, len(opts.Windows)),
 	}
 	for i, w := range opts.Windows {
@@ -547,7 +600,7 @@ func newModelState(opts ModelOptions) *modelState {
 }
 
 // ensureClasses appends the classes st does not have yet, growing every
-// bucket and sum.
+// sum. Buckets name cells by class index and need no change.
 func (st *modelState) ensureClasses(classes []string) {
 	var added []string
 	for _, c := range classes {
@@ -564,10 +617,6 @@ func (st *modelState) ensureClasses(classes []string) {
 		st.index[c] = len(st.index)
 	}
 	n := len(st.classes)
-	for _, b := range st.buckets {
-		b.cells = growCells(b.cells, old, n)
-		b.pred = append(b.pred, make([]int64, n-old)...)
-	}
 	for i := range st.sums {
 		g, err := st.sums[i].m.Grow(st.classes)
 		if err != nil {
@@ -576,15 +625,6 @@ func (st *modelState) ensureClasses(classes []string) {
 		st.sums[i].m = g
 		st.sums[i].pred = append(st.sums[i].pred, make([]int64, n-old)...)
 	}
-}
-
-// growCells re-lays a row-major old×old matrix as n×n with zeros added.
-func growCells(cells []int64, old, n int) []int64 {
-	out := make([]int64, n*n)
-	for a := 0; a < old; a++ {
-		copy(out[a*n:a*n+old], cells[a*old:(a+1)*old])
-	}
-	return out
 }
 
 // low returns the start of the oldest bucket a window can reach at wm.
@@ -603,55 +643,35 @@ func (st *modelState) apply(mc *modelChanges) {
 		names = append(names, d.Predicted)
 	}
 	st.ensureClasses(names)
-	n := len(st.classes)
 	for _, d := range mc.cells {
-		if d.N == 0 {
-			continue
-		}
-		b, key := st.bucket(d.Bucket)
-		if b == nil {
-			continue
-		}
-		i := st.index[d.Actual]*n + st.index[d.Predicted]
-		b.cells[i] += d.N
-		for w := range st.sums {
-			if st.inWindow(w, key) {
-				st.sums[w].m.cells[i] += d.N
-			}
-		}
+		st.add(d.Bucket, st.index[d.Actual], st.index[d.Predicted], d.N)
 	}
 	for _, d := range mc.predicted {
-		if d.N == 0 {
-			continue
-		}
-		b, key := st.bucket(d.Bucket)
-		if b == nil {
-			continue
-		}
-		k := st.index[d.Predicted]
-		b.pred[k] += d.N
-		for w := range st.sums {
-			if st.inWindow(w, key) {
-				st.sums[w].pred[k] += d.N
-			}
-		}
+		st.add(d.Bucket, predictedOnly, st.index[d.Predicted], d.N)
 	}
 }
 
-// bucket returns the counts of the bucket holding t, created if needed, or
-// nil when that bucket is too old for any window.
-func (st *modelState) bucket(t time.Time) (*bucketCounts, int64) {
+// add adds n to count (actual, predicted) of the bucket holding t and of
+// every window sum holding that bucket; actual is predictedOnly for a
+// predicted count. A bucket too old for any window is ignored.
+func (st *modelState) add(t time.Time, actual, predicted int, n int64) {
+	if n == 0 {
+		return
+	}
 	key := BucketStart(t, st.opts.Bucket).UnixNano()
 	if !st.wm.IsZero() && key < st.low(st.wm) {
-		return nil, key
+		return
 	}
-	b, ok := st.buckets[key]
-	if !ok {
-		n := len(st.classes)
-		b = &bucketCounts{cells: make([]int64, n*n), pred: make([]int64, n)}
+	if b := st.buckets[key].add(int32(actual), int32(predicted), n); len(b) > 0 {
 		st.buckets[key] = b
+	} else {
+		delete(st.buckets, key)
 	}
-	return b, key
+	for w := range st.sums {
+		if st.inWindow(w, key) {
+			st.sums[w].add(actual, predicted, n)
+		}
+	}
 }
 
 func (st *modelState) inWindow(w int, key int64) bool {
@@ -712,12 +732,9 @@ func (st *modelState) addRange(sum *windowSum, from, to, step int64, sign int64)
 	}
 }
 
-func addBucket(sum *windowSum, b *bucketCounts, sign int64) {
-	for i, v := range b.cells {
-		sum.m.cells[i] += sign * v
-	}
-	for i, v := range b.pred {
-		sum.pred[i] += sign * v
+func addBucket(sum *windowSum, b bucketCounts, sign int64) {
+	for _, c := range b {
+		sum.add(int(c.actual), int(c.predicted), sign*c.n)
 	}
 }
 

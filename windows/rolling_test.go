@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math/rand/v2"
 	"path/filepath"
+	"runtime"
 	"slices"
 	"sync"
 	"sync/atomic"
@@ -765,4 +766,74 @@ func TestTrackerWithoutStore(t *testing.T) {
 	if err := tr.Load(context.Background()); err == nil {
 		t.Error("Load without a store: no error")
 	}
+}
+
+// BenchmarkTrackerMemory fills the rolling state of 50 models × 12 classes
+// with traffic in every 5-minute bucket of the longest window's ten-day
+// reach (2,880 buckets), a few labeled predictions per bucket touching a
+// couple of cells, with now and then a late correction that moves a count
+// from one cell to another. It reports the live heap the tracker holds
+// after a full GC, which is what the daemon keeps resident between scrapes.
+func BenchmarkTrackerMemory(b *testing.B) {
+	const (
+		models  = 50
+		classes = 12
+		buckets = 10 * 24 * 12 // ten days of 5m buckets
+	)
+	win := []windows.Window{
+		{Name: "1h", Length: time.Hour},
+		{Name: "1d", Length: 24 * time.Hour},
+		{Name: "7d", Length: 7 * 24 * time.Hour},
+		{Name: "3d-matured", Length: 3 * 24 * time.Hour, Lag: 7 * 24 * time.Hour},
+	}
+	names := make([]string, classes)
+	for i := range names {
+		names[i] = fmt.Sprintf("class-%02d", i)
+	}
+	fill := func() *windows.Tracker {
+		tr, err := windows.NewTracker(windows.TrackerOptions{DefaultBucket: 5 * time.Minute, DefaultWindows: win})
+		if err != nil {
+			b.Fatal(err)
+		}
+		rng := rand.New(rand.NewPCG(3, 4))
+		for m := range models {
+			model := fmt.Sprintf("model-%02d", m)
+			tr.SetClasses(model, names)
+			for k := range buckets {
+				bucket := t0.Add(time.Duration(k) * 5 * time.Minute)
+				var ch store.Changes
+				for range 1 + rng.IntN(4) {
+					a, p := names[rng.IntN(classes)], names[rng.IntN(classes)]
+					if rng.IntN(3) > 0 {
+						a = p // most predictions are right
+					}
+					ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: bucket, Actual: a, Predicted: p, N: 1})
+					ch.Predicted = append(ch.Predicted, store.PredictedDelta{Model: model, Bucket: bucket, Predicted: p, N: 1})
+				}
+				if k > 12 && rng.IntN(10) == 0 {
+					// A late correction an hour back: one prediction's
+					// label moves from one actual class to another.
+					late := bucket.Add(-time.Hour)
+					p := names[rng.IntN(classes)]
+					ch.Cells = append(ch.Cells,
+						store.CellDelta{Model: model, Bucket: late, Actual: p, Predicted: p, N: -1},
+						store.CellDelta{Model: model, Bucket: late, Actual: names[rng.IntN(classes)], Predicted: p, N: 1})
+				}
+				tr.Apply(ch, map[string]time.Time{model: bucket.Add(4 * time.Minute)})
+			}
+		}
+		return tr
+	}
+	var heap uint64
+	for b.Loop() {
+		var before, after runtime.MemStats
+		runtime.GC()
+		runtime.ReadMemStats(&before)
+		tr := fill()
+		runtime.GC()
+		runtime.ReadMemStats(&after)
+		heap = after.HeapAlloc - before.HeapAlloc
+		runtime.KeepAlive(tr)
+	}
+	b.ReportMetric(float64(heap), "heap-bytes")
 }
