@@ -45,7 +45,7 @@ footer { padding: 1rem 1.25rem 2rem; }
 <h1>classwatch</h1>
 <p class="muted">Confusion matrices of logged predictions joined with their labels, per rolling window. Generated {{.Generated}}.</p>
 <p class="caution">Monitoring figures are evidence about how a model behaved on the traffic it saw and the labels known so far; they are not a validation of the model.</p>
-<p>JSON: <a href="/v1/models">/v1/models</a> · Prometheus: <a href="/metrics">/metrics</a> · Intervals: Wilson score, {{.Confidence}}.</p>
+<p>JSON: <a href="/v1/models">/v1/models</a> · <a href="/v1/alerts">/v1/alerts</a> · Prometheus: <a href="/metrics">/metrics</a> · Intervals: Wilson score, {{.Confidence}}.</p>
 </header>
 <main>
 {{if .Error}}<p class="caution">Could not list the models: {{.Error}}.</p>{{end}}
