@@ -3,7 +3,7 @@ package alerts
 import "github.com/classwatch/classwatch/windows"
 
 // metricSpec says how a floor, ceiling or drop rule reads one window metric.
-// Names are the metric names of the JSON API (design §6).
+// Names are the metric names of the JSON API (README.md "HTTP API").
 type metricSpec struct {
 	perClass bool
 	// min is the least value the metric takes: 0, or −1 for mcc and kappa.

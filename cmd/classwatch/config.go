@@ -29,7 +29,7 @@ const databaseURLEnv = "CLASSWATCH_DATABASE_URL"
 // sqliteFile is the embedded store's file name under data_dir.
 const sqliteFile = "classwatch.db"
 
-// config is the daemon's configuration file. The keys of design §8 are a
+// config is the daemon's configuration file. The keys of README.md "Configuration" are a
 // public contract; the others are ours. Durations take Go syntax plus "d"
 // for days. Zero turns a limit or a job off where noted.
 type config struct {

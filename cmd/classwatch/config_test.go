@@ -46,7 +46,7 @@ func TestDefaults(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	// The contract values of design.md §8.
+	// The contract values of README.md "Configuration".
 	if cfg.Listen != "127.0.0.1:9640" || cfg.Database != "" || cfg.DataDir != "./classwatch-data" ||
 		cfg.Bucket != duration(5*time.Minute) || cfg.Confidence != 0.95 {
 		t.Errorf("defaults = %s", cfg)

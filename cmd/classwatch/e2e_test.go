@@ -113,7 +113,7 @@ type classFigures struct {
 	SpecificityInterval *[2]float64 `json:"specificity_interval"`
 }
 
-// apiFigures is the figures part of a read-API body (design §6): the
+// apiFigures is the figures part of a read-API body (README.md "HTTP API"): the
 // overall metrics sit under "metrics".
 type apiFigures struct {
 	Classes     []string  `json:"classes"`
@@ -526,7 +526,7 @@ func sampleValue(t dto.MetricType, m *dto.Metric) float64 {
 }
 
 // checkSeries expects family{labels} to exist with value want, or to be
-// absent when want is nil (an undefined ratio, design §5).
+// absent when want is nil (an undefined ratio, README.md "Metric definitions").
 func (e exposition) checkSeries(tb testing.TB, family string, labels map[string]string, want *float64) {
 	tb.Helper()
 	got, ok := e[family][labelKey(labels)]
@@ -551,7 +551,7 @@ func (e exposition) countSeries(family, modelName string) int {
 	return n
 }
 
-// classSeries lists the {model,window,class} families of design §7 (plus
+// classSeries lists the {model,window,class} families of README.md "Prometheus metrics" (plus
 // our per-class prediction count) with the figure each carries.
 var classSeries = []struct {
 	family string
@@ -568,7 +568,7 @@ var classSeries = []struct {
 	{"classwatch_window_class_predictions", func(c classFigures) *float64 { return asFloat(c.Predictions) }},
 }
 
-// windowSeries lists the {model,window} families of design §7.
+// windowSeries lists the {model,window} families of README.md "Prometheus metrics".
 var windowSeries = []struct {
 	family string
 	value  func(f figures) *float64
@@ -594,7 +594,7 @@ func asFloat(n int64) *float64 {
 	return &v
 }
 
-// checkWindowSeries compares every per-window series of design §7 with the
+// checkWindowSeries compares every per-window series of README.md "Prometheus metrics" with the
 // fixture, and the ingest counters with the outcomes gen.py simulated.
 func checkWindowSeries(tb testing.TB, e exposition, fx e2eFixture) {
 	tb.Helper()
@@ -610,7 +610,7 @@ func checkWindowSeries(tb testing.TB, e exposition, fx e2eFixture) {
 		w := fx.Windows[name]
 		win := map[string]string{"model": fx.Model, "window": name}
 
-		// source: window bounds of design §4, computed by testdata/e2e/gen.py
+		// source: window bounds of README.md "Join semantics and windows", computed by testdata/e2e/gen.py
 		e.checkSeries(tb, "classwatch_window_start_timestamp_seconds", win, asFloat(w.From.Unix()))
 		e.checkSeries(tb, "classwatch_window_end_timestamp_seconds", win, asFloat(w.To.Unix()))
 
@@ -655,7 +655,7 @@ func checkWindowSeries(tb testing.TB, e exposition, fx e2eFixture) {
 		}
 	}
 
-	// source: testdata/e2e/gen.py (watermark of design §4)
+	// source: testdata/e2e/gen.py (watermark of README.md "Join semantics and windows")
 	e.checkSeries(tb, "classwatch_watermark_timestamp_seconds", map[string]string{"model": fx.Model}, asFloat(fx.Watermark.Unix()))
 
 	// source: the outcomes of the join semantics of windows/store/store.go,

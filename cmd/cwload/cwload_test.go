@@ -13,7 +13,7 @@ import (
 // starts the real daemon, pushes 20,000 predictions and their labels over
 // HTTP and into the store, compares the daemon's counts and window
 // matrices with the generator's recount, and scrapes a 50-model daemon,
-// checking that every confusion cell is exported (design §7). It needs
+// checking that every confusion cell is exported (README.md "Prometheus metrics"). It needs
 // PostgreSQL and a few seconds, so it runs only with CLASSWATCH_LOADTEST=1:
 //
 //	CLASSWATCH_LOADTEST=1 go test -run TestQuickRun -v ./cmd/cwload/

@@ -36,7 +36,7 @@ type pushResults struct {
 const pushClasses = 6
 
 // pushWindows are the windows of the ingest benchmark: the daemon's
-// defaults (design §8).
+// defaults (README.md "Configuration").
 func pushWindows() []windows.Window {
 	return []windows.Window{
 		{Name: "1h", Length: time.Hour},

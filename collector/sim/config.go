@@ -16,7 +16,7 @@ const CardLabelTimeout = "7d"
 
 // Config returns the YAML configuration "classwatch demo" runs the daemon
 // with, for a simulation with the same opts (Start is required). It uses
-// the keys of design §8: the embedded store under dataDir, listening on
+// the keys of README.md "Configuration": the embedded store under dataDir, listening on
 // listen, an event-time clock (the watermark follows the simulated
 // prediction times), 5m buckets, windows short enough to fill within
 // minutes at DefaultSpeed plus a one-day window lagged until card-screen's
@@ -43,7 +43,7 @@ func Config(listen, dataDir string, opts Options) (string, error) {
 	to := opts.Start.UTC().Add(drift).Truncate(time.Hour)
 
 	var b strings.Builder
-	b.WriteString("# classwatch demo: Tidewater Savings, a fictional bank, with simulated traffic.\n")
+	b.WriteString("# classwatch demo: Plumtwig Mutual, a fictional bank, with simulated traffic.\n")
 	fmt.Fprintf(&b, "listen: %s\n", quote(listen))
 	b.WriteString("database: \"\"\n")
 	fmt.Fprintf(&b, "data_dir: %s\n", quote(dataDir))

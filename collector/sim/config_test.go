@@ -11,8 +11,8 @@ import (
 	"github.com/classwatch/classwatch/windows"
 )
 
-// demoConfig mirrors the configuration keys of design §8, plus clock
-// (design §4), and nothing else, so a misspelt or extra key fails to decode.
+// demoConfig mirrors the configuration keys of README.md "Configuration", plus clock
+// (README.md "Join semantics and windows"), and nothing else, so a misspelt or extra key fails to decode.
 type demoConfig struct {
 	Listen     string         `yaml:"listen"`
 	Database   string         `yaml:"database"`

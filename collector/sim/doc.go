@@ -1,5 +1,5 @@
 // Package sim generates the simulated traffic of "classwatch demo": the two
-// classifiers of Tidewater Savings, a fictional retail bank, logging their
+// classifiers of Plumtwig Mutual, a fictional retail bank, logging their
 // predictions and receiving late labels, on a simulated clock that runs
 // thousands of times faster than the wall clock.
 //

@@ -49,7 +49,7 @@ type Line struct {
 	Data []byte
 }
 
-// predictionLine and labelLine are the wire forms of design §6.
+// predictionLine and labelLine are the wire forms of README.md "HTTP API".
 type predictionLine struct {
 	Model     string             `json:"model"`
 	ID        string             `json:"id"`

@@ -21,7 +21,7 @@ var testStart = time.Date(2026, 3, 2, 0, 0, 0, 0, time.UTC)
 const day = 24 * time.Hour
 
 // wirePrediction and wireLabel decode lines strictly, with the field names
-// of design §6.
+// of README.md "HTTP API".
 type wirePrediction struct {
 	Model     string             `json:"model"`
 	ID        string             `json:"id"`
@@ -85,7 +85,7 @@ func validLabel(data []byte) (wireLabel, time.Time, bool) {
 	return l, at, true
 }
 
-// pred is a prediction as first stored by a daemon following design §4.
+// pred is a prediction as first stored by a daemon following README.md "Join semantics and windows".
 type pred struct {
 	wirePrediction
 	at   time.Time
@@ -100,7 +100,7 @@ type version struct {
 	sent   time.Time
 }
 
-// trace is generated traffic joined the way design §4 describes, written
+// trace is generated traffic joined the way README.md "Join semantics and windows" describes, written
 // independently of the daemon.
 type trace struct {
 	predLines, labelLines int
@@ -182,7 +182,7 @@ func simulate(t *testing.T, opts Options, until time.Time, step time.Duration) *
 	return tr
 }
 
-// current returns a prediction's current label per design §4 and the store
+// current returns a prediction's current label per README.md "Join semantics and windows" and the store
 // contract: the version with the greatest at, ties to the greater actual.
 func (tr *trace) current(k string) (string, bool) {
 	vs := tr.labels[k]

@@ -147,7 +147,7 @@ type poster struct {
 	stats    Stats
 }
 
-// reply is the daemon's answer to an ingest request (design §6).
+// reply is the daemon's answer to an ingest request (README.md "HTTP API").
 type reply struct {
 	Accepted   int `json:"accepted"`
 	Duplicates int `json:"duplicates"`

@@ -23,7 +23,7 @@ type request struct {
 }
 
 // receiver is an httptest server standing in for the daemon's ingest
-// endpoints: it records every body and answers in the shape of design §6,
+// endpoints: it records every body and answers in the shape of README.md "HTTP API",
 // rejecting the lines that are not valid for the scenario.
 type receiver struct {
 	// throttleFirst answers the first request 429 with Retry-After: 1.

@@ -9,7 +9,7 @@ classwatch_window_predictions), recomputes every ratio and Wilson interval
 with the reference libraries, and checks that exactly the defined ratios
 are present and equal to 1e-12. Exits non-zero on any difference.
 
-The rules it checks are design.md section 5: a ratio with a zero
+The rules it checks are README.md "Metric definitions": a ratio with a zero
 denominator is absent. Per-class F1 and macro F1 follow classwatch's stated
 convention, equal to precision_recall_fscore_support(zero_division=0) and
 f1_score(average="macro", labels=<classes on either axis>, zero_division=0).
