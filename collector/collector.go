@@ -14,6 +14,7 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 
+	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store"
 )
 
@@ -26,7 +27,6 @@ const (
 	DefaultMaxFuture    = 15 * time.Minute
 	DefaultRetryAfter   = 5 * time.Second
 	DefaultBatchLines   = 1000
-	DefaultBucket       = 5 * time.Minute
 )
 
 // Field length limits, in bytes.
@@ -43,7 +43,7 @@ type ModelPolicy struct {
 	// Classes are registered, in this order, before the model's first
 	// batch; they fix the first axes of its matrix.
 	Classes []string
-	// Bucket is the width of the model's buckets; zero means DefaultBucket.
+	// Bucket is the width of the model's buckets; zero means windows.DefaultBucket.
 	Bucket time.Duration
 	// LabelTimeout and DefaultLabel, when both set, give every prediction
 	// still unlabeled LabelTimeout after its time an implied DefaultLabel.
@@ -308,7 +308,7 @@ func New(opts Options) (*Collector, error) {
 }
 
 func withDefaults(p ModelPolicy) ModelPolicy {
-	p.Bucket = cmp.Or(p.Bucket, DefaultBucket)
+	p.Bucket = cmp.Or(p.Bucket, windows.DefaultBucket)
 	p.Classes = slices.Clone(p.Classes)
 	return p
 }

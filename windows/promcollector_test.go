@@ -2,8 +2,6 @@ package windows_test
 
 import (
 	"bytes"
-	"compress/gzip"
-	"errors"
 	"flag"
 	"fmt"
 	"io"
@@ -21,10 +19,10 @@ import (
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 	"github.com/prometheus/client_golang/prometheus/testutil"
-	dto "github.com/prometheus/client_model/go"
 	"github.com/prometheus/common/expfmt"
 
 	"github.com/classwatch/classwatch/windows"
+	"github.com/classwatch/classwatch/windows/api"
 	"github.com/classwatch/classwatch/windows/store"
 )
 
@@ -338,76 +336,6 @@ func TestMergeGatherers(t *testing.T) {
 	}
 }
 
-// TestMetricsHandler checks content and encoding negotiation against
-// client_golang v1.25's own promhttp handler serving the same families.
-func TestMetricsHandler(t *testing.T) {
-	g := checked(goldenTracker(t))
-	opts := promhttp.HandlerOpts{ErrorHandling: promhttp.HTTPErrorOnError, EnableOpenMetrics: true}
-	ours, theirs := windows.MetricsHandler(g, opts), promhttp.HandlerFor(g, opts)
-
-	for _, tc := range []struct {
-		accept, encoding string
-		gzip             bool
-	}{
-		{accept: "", encoding: "", gzip: false},
-		{accept: prometheusAccept, encoding: "gzip", gzip: true},
-		{accept: "text/plain;version=0.0.4", encoding: "gzip, deflate", gzip: true},
-		{accept: prometheusAccept, encoding: "gzip;q=0, identity", gzip: false},
-		{accept: prometheusAccept, encoding: "*", gzip: true},
-		{accept: prometheusAccept, encoding: "*;q=0.5, gzip;q=0", gzip: false},
-		{accept: prometheusAccept, encoding: "GZIP;Q=0.2", gzip: true},
-	} {
-		serve := func(h http.Handler) (*httptest.ResponseRecorder, []byte) {
-			req := httptest.NewRequest(http.MethodGet, "/metrics", nil)
-			req.Header.Set("Accept", tc.accept)
-			req.Header.Set("Accept-Encoding", tc.encoding)
-			rec := httptest.NewRecorder()
-			h.ServeHTTP(rec, req)
-			body := rec.Body.Bytes()
-			if rec.Header().Get("Content-Encoding") == "gzip" {
-				zr, err := gzip.NewReader(bytes.NewReader(body))
-				if err != nil {
-					t.Fatal(err)
-				}
-				if body, err = io.ReadAll(zr); err != nil {
-					t.Fatal(err)
-				}
-			}
-			return rec, body
-		}
-		rec, got := serve(ours)
-		ref, want := serve(theirs)
-		if rec.Code != http.StatusOK {
-			t.Fatalf("Accept-Encoding %q: status %d", tc.encoding, rec.Code)
-		}
-		if got, want := rec.Header().Get("Content-Encoding") == "gzip", tc.gzip; got != want {
-			t.Errorf("Accept-Encoding %q: gzip = %v, want %v", tc.encoding, got, want)
-		}
-		if got, want := rec.Header().Get("Content-Type"), ref.Header().Get("Content-Type"); got != want {
-			t.Errorf("Accept %q: Content-Type %q, want %q", tc.accept, got, want)
-		}
-		if !bytes.Equal(got, want) {
-			t.Errorf("Accept %q, Accept-Encoding %q: body differs from promhttp's:\n%s", tc.accept, tc.encoding, firstDiff(got, want))
-		}
-	}
-
-	// An error page goes out uncompressed.
-	failing := prometheus.GathererFunc(func() ([]*dto.MetricFamily, error) { return nil, errors.New("store gone") })
-	req := httptest.NewRequest(http.MethodGet, "/metrics", nil)
-	req.Header.Set("Accept-Encoding", "gzip")
-	rec := httptest.NewRecorder()
-	windows.MetricsHandler(failing, opts).ServeHTTP(rec, req)
-	if got, want := rec.Code, http.StatusInternalServerError; got != want {
-		t.Errorf("failing gather: status %d, want %d", got, want)
-	}
-	if got := rec.Header().Get("Content-Encoding"); got != "" {
-		t.Errorf("failing gather: Content-Encoding %q, want none", got)
-	}
-	if !strings.Contains(rec.Body.String(), "store gone") {
-		t.Errorf("failing gather: body %q does not name the error", rec.Body.String())
-	}
-}
-
 // BenchmarkScrape measures one scrape of 50 models × 12 classes × 4
 // windows (about 52,000 series) as the daemon serves it, next to a
 // registry with the Go and process collectors: Gather alone, and a GET of
@@ -419,7 +347,7 @@ func BenchmarkScrape(b *testing.B) {
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	metrics := windows.MergeGatherers(reg, windows.NewGatherer(tr, 0.95))
-	h := windows.MetricsHandler(metrics, promhttp.HandlerOpts{ErrorHandling: promhttp.HTTPErrorOnError, EnableOpenMetrics: true})
+	h := api.MetricsHandler(metrics, promhttp.HandlerOpts{ErrorHandling: promhttp.HTTPErrorOnError, EnableOpenMetrics: true})
 	b.Run("gather", func(b *testing.B) {
 		latency(b, func() {
 			if _, err := metrics.Gather(); err != nil {

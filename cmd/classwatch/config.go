@@ -140,7 +140,7 @@ func defaultConfig() config {
 	return config{
 		Listen:     "127.0.0.1:9640",
 		DataDir:    "./classwatch-data",
-		Bucket:     duration(5 * time.Minute),
+		Bucket:     duration(windows.DefaultBucket),
 		Confidence: 0.95,
 		Windows: []windowConfig{
 			{Name: "1h", Length: duration(time.Hour)},

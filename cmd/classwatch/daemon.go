@@ -184,7 +184,7 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 	// windows) bypass the registry's per-series checks; MergeGatherers
 	// reports a family name that both define.
 	metrics := windows.MergeGatherers(reg, windows.NewGatherer(d.tracker, cfg.Confidence))
-	mux.Handle("GET /metrics", windows.MetricsHandler(metrics, promhttp.HandlerOpts{
+	mux.Handle("GET /metrics", api.MetricsHandler(metrics, promhttp.HandlerOpts{
 		ErrorHandling:     promhttp.ContinueOnError,
 		ErrorLog:          slog.NewLogLogger(log.Handler(), slog.LevelError),
 		EnableOpenMetrics: true,
