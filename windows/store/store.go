@@ -35,6 +35,7 @@ package store
 import (
 	"context"
 	"errors"
+	"math"
 	"time"
 )
 
@@ -132,11 +133,44 @@ type PredictedDelta struct {
 	N         int64
 }
 
+// ScoreDelta is a net change to one score histogram count, summed over
+// segments.
+type ScoreDelta struct {
+	Model  string
+	Bucket time.Time
+	Class  string
+	Bin    int
+	N      int64
+}
+
+// CalibrationDelta is a net change to one calibration bin, summed over
+// segments.
+type CalibrationDelta struct {
+	Model    string
+	Bucket   time.Time
+	Bin      int
+	N        int64
+	ScoreSum float64
+	Correct  int64
+}
+
+// BrierDelta is a net change to one bucket's Brier sum, summed over
+// segments.
+type BrierDelta struct {
+	Model  string
+	Bucket time.Time
+	N      int64
+	Sum    float64
+}
+
 // Changes are the committed effects of a call, for callers that keep
 // running sums (the rolling windows) in step with the store.
 type Changes struct {
-	Cells     []CellDelta
-	Predicted []PredictedDelta
+	Cells       []CellDelta
+	Predicted   []PredictedDelta
+	Scores      []ScoreDelta
+	Calibration []CalibrationDelta
+	Brier       []BrierDelta
 }
 
 // PredictionResult reports a committed prediction batch.
@@ -170,6 +204,46 @@ type PredictedCount struct {
 	N         int64
 }
 
+// ScoreBins is the number of equal-width score bins over [0, 1]: bin b holds
+// scores in [b/10, (b+1)/10); the last bin also holds 1.
+const ScoreBins = 10
+
+// ScoreBin returns the bin of score s (s in [0, 1]); a score outside
+// [0, 1] goes to the nearest end bin.
+func ScoreBin(s float64) int {
+	b := int(math.Floor(s * ScoreBins))
+	return min(max(b, 0), ScoreBins-1)
+}
+
+// ScoreCount counts predictions that carry scores whose score for Class lies
+// in Bin; a class missing from a prediction's scores counts as score 0.
+// Predictions without scores count nowhere.
+type ScoreCount struct {
+	Bucket time.Time
+	Class  string
+	Bin    int
+	N      int64
+}
+
+// CalibrationCount aggregates labeled predictions that carry scores by the bin of
+// the predicted class's score (0 when missing): N, the sum of that score, and
+// how many have current label == predicted.
+type CalibrationCount struct {
+	Bucket   time.Time
+	Bin      int
+	N        int64
+	ScoreSum float64
+	Correct  int64
+}
+
+// BrierSum aggregates labeled predictions that carry scores: N and the sum over them of
+// Σ_k over the model's classes (s_k − 1[actual = k])², a missing s_k counting as 0.
+type BrierSum struct {
+	Bucket time.Time
+	N      int64
+	Sum    float64
+}
+
 // Query selects a model's buckets whose start lies in [From, To).
 type Query struct {
 	Model string
@@ -179,11 +253,15 @@ type Query struct {
 	Segment *string
 }
 
-// Counts are the cells and predicted-class counts of a Query, ordered by
-// bucket, then class names.
+// Counts are the cells, predicted-class counts and score aggregates of a
+// Query, ordered by bucket, then class names (Scores by class, then bin;
+// Calibration by bin).
 type Counts struct {
-	Cells     []Cell
-	Predicted []PredictedCount
+	Cells       []Cell
+	Predicted   []PredictedCount
+	Scores      []ScoreCount
+	Calibration []CalibrationCount
+	Brier       []BrierSum
 }
 
 // ModelInfo describes a registered model.

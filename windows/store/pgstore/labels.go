@@ -170,40 +170,9 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 // batch's distinct (model, id) pairs and lineKey the key of each line.
 func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Label, ids map[string]int32,
 	keys []labelKey, lineKey []int, now time.Time, out []store.LabelOutcome, t *tally, days *[]modelDay) error {
-	targets := make([]*target, len(keys))
-	all := make([]int, len(keys))
-	for i := range all {
-		all[i] = i
-	}
-	// The models' label locks, then the lookup, in one round trip.
-	var b pgx.Batch
-	b.Queue(sqlBegin)
-	b.Queue(sqlNoHashJoin)
-	b.Queue(sqlNoMergeJoin)
-	b.Queue(sqlLockModels, s.keys.label, sortedModels(ids))
-	queueFind(&b, keys, all, targets)
-	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
+	targets, err := s.findTargets(ctx, tx, ids, keys)
+	if err != nil {
 		return err
-	}
-	var (
-		unknown       []int
-		unknownModels []int32
-	)
-	for i, tg := range targets {
-		if tg == nil {
-			unknown = append(unknown, i)
-			unknownModels = append(unknownModels, keys[i].model)
-		}
-	}
-	if len(unknown) > 0 {
-		// Early labels: take the models' early-label locks exclusively,
-		// which waits for prediction batches in flight, then look again.
-		var b pgx.Batch
-		b.Queue(sqlLockModels, s.keys.early, distinctSorted(unknownModels))
-		queueFind(&b, keys, unknown, targets)
-		if err := tx.SendBatch(ctx, &b).Close(); err != nil {
-			return err
-		}
 	}
 	*days = (*days)[:0]
 	for _, tg := range targets {
@@ -217,34 +186,122 @@ func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Lab
 	if err := readVersions(ctx, tx, targets); err != nil {
 		return err
 	}
-
-	// Decide each line in order against the versions known so far.
-	var (
-		v     versionRows
-		early struct {
-			models       []int32
-			ids, actuals []string
-			ats          []time.Time
-			lines        [][]int // batch lines per early row
+	var v versionRows
+	early := decideLabels(batch, keys, lineKey, targets, &v, out)
+	for _, tg := range targets {
+		if tg != nil {
+			tallyTarget(tg, t)
 		}
-		earlyRow = map[earlyKey]int{}
+	}
+	if err := v.copy(ctx, tx); err != nil {
+		return err
+	}
+	var b pgx.Batch
+	early.queue(&b, now, out)
+	t.queue(&b)
+	b.Queue(sqlCommit)
+	return tx.SendBatch(ctx, &b).Close()
+}
+
+// findTargets opens the transaction, takes the models' label locks and
+// looks up the predictions of keys, in one round trip; for unknown keys it
+// then takes the models' early-label locks exclusively, which waits for
+// prediction batches in flight, and looks again. The result holds nil for
+// a key still unknown.
+func (s *Store) findTargets(ctx context.Context, tx *pgx.Conn, ids map[string]int32, keys []labelKey) ([]*target, error) {
+	targets := make([]*target, len(keys))
+	all := make([]int, len(keys))
+	for i := range all {
+		all[i] = i
+	}
+	var b pgx.Batch
+	b.Queue(sqlBegin)
+	b.Queue(sqlNoHashJoin)
+	b.Queue(sqlNoMergeJoin)
+	b.Queue(sqlLockModels, s.keys.label, sortedModels(ids))
+	queueFind(&b, keys, all, targets)
+	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
+		return nil, err
+	}
+	var (
+		unknown       []int
+		unknownModels []int32
 	)
+	for i, tg := range targets {
+		if tg == nil {
+			unknown = append(unknown, i)
+			unknownModels = append(unknownModels, keys[i].model)
+		}
+	}
+	if len(unknown) > 0 {
+		var b pgx.Batch
+		b.Queue(sqlLockModels, s.keys.early, distinctSorted(unknownModels))
+		queueFind(&b, keys, unknown, targets)
+		if err := tx.SendBatch(ctx, &b).Close(); err != nil {
+			return nil, err
+		}
+	}
+	return targets, nil
+}
+
+// earlyRows collects a batch's early label versions, one row per distinct
+// version.
+type earlyRows struct {
+	models       []int32
+	ids, actuals []string
+	ats          []time.Time
+	lines        [][]int // batch lines per row
+	row          map[earlyKey]int
+}
+
+// add records line i as early version ek.
+func (e *earlyRows) add(ek earlyKey, i int) {
+	if j, ok := e.row[ek]; ok {
+		e.lines[j] = append(e.lines[j], i)
+		return
+	}
+	if e.row == nil {
+		e.row = map[earlyKey]int{}
+	}
+	e.row[ek] = len(e.models)
+	e.models = append(e.models, ek.model)
+	e.ids = append(e.ids, ek.id)
+	e.ats = append(e.ats, ek.at)
+	e.actuals = append(e.actuals, ek.actual)
+	e.lines = append(e.lines, []int{i})
+}
+
+// queue queues the insert of the early rows. An early version already held
+// is a duplicate; RETURNING names the new ones, whose first line is early.
+func (e *earlyRows) queue(b *pgx.Batch, now time.Time, out []store.LabelOutcome) {
+	if len(e.models) == 0 {
+		return
+	}
+	for _, lines := range e.lines {
+		for _, i := range lines {
+			out[i] = store.LabelDuplicate
+		}
+	}
+	b.Queue(sqlAddEarly, e.models, e.ids, e.ats, e.actuals, now).Query(func(rows pgx.Rows) error {
+		var ek earlyKey
+		_, err := pgx.ForEachRow(rows, []any{&ek.model, &ek.id, &ek.at, &ek.actual}, func() error {
+			out[e.lines[e.row[ek]][0]] = store.LabelEarly
+			return nil
+		})
+		return err
+	})
+}
+
+// decideLabels decides each line in order against the versions known so
+// far, adds the new versions to v and returns the early ones.
+func decideLabels(batch []store.Label, keys []labelKey, lineKey []int, targets []*target, v *versionRows, out []store.LabelOutcome) *earlyRows {
+	early := &earlyRows{}
 	for i, l := range batch {
 		k := keys[lineKey[i]]
 		at := micro(l.At)
 		tg := targets[lineKey[i]]
 		if tg == nil {
-			ek := earlyKey{k, at, l.Actual}
-			if j, ok := earlyRow[ek]; ok {
-				early.lines[j] = append(early.lines[j], i)
-				continue
-			}
-			earlyRow[ek] = len(early.models)
-			early.models = append(early.models, k.model)
-			early.ids = append(early.ids, k.id)
-			early.ats = append(early.ats, at)
-			early.actuals = append(early.actuals, l.Actual)
-			early.lines = append(early.lines, []int{i})
+			early.add(earlyKey{k, at, l.Actual}, i)
 			continue
 		}
 		nv := version{actual: l.Actual, at: at}
@@ -265,43 +322,19 @@ func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Lab
 			out[i] = store.LabelDuplicate
 		}
 	}
-	for _, tg := range targets {
-		if tg == nil {
-			continue
-		}
-		after, has := current(tg.versions)
-		if tg.had && (!has || after.actual != tg.before.actual) {
-			t.addCell(tg.model, tg.bucket, tg.segment, tg.before.actual, tg.predicted, -1)
-		}
-		if has && (!tg.had || after.actual != tg.before.actual) {
-			t.addCell(tg.model, tg.bucket, tg.segment, after.actual, tg.predicted, 1)
-		}
-	}
+	return early
+}
 
-	if err := v.copy(ctx, tx); err != nil {
-		return err
+// tallyTarget counts the move of a prediction's cell from its current
+// label before the batch to its current label after it.
+func tallyTarget(tg *target, t *tally) {
+	after, has := current(tg.versions)
+	if tg.had && (!has || after.actual != tg.before.actual) {
+		t.addCell(tg.model, tg.bucket, tg.segment, tg.before.actual, tg.predicted, -1)
 	}
-	b = pgx.Batch{}
-	if len(early.models) > 0 {
-		// An early version already held is a duplicate; RETURNING names the
-		// new ones.
-		for _, lines := range early.lines {
-			for _, i := range lines {
-				out[i] = store.LabelDuplicate
-			}
-		}
-		b.Queue(sqlAddEarly, early.models, early.ids, early.ats, early.actuals, now).Query(func(rows pgx.Rows) error {
-			var ek earlyKey
-			_, err := pgx.ForEachRow(rows, []any{&ek.model, &ek.id, &ek.at, &ek.actual}, func() error {
-				out[early.lines[earlyRow[ek]][0]] = store.LabelEarly
-				return nil
-			})
-			return err
-		})
+	if has && (!tg.had || after.actual != tg.before.actual) {
+		t.addCell(tg.model, tg.bucket, tg.segment, after.actual, tg.predicted, 1)
 	}
-	t.queue(&b)
-	b.Queue(sqlCommit)
-	return tx.SendBatch(ctx, &b).Close()
 }
 
 // earlyKey is one early label version.
