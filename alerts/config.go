@@ -272,6 +272,17 @@ func windowNames(n *yaml.Node) []string {
 	return names
 }
 
+// CheckWindows reports the rules that name a window (their own or their
+// reference's) missing from ws: the check New makes, for a caller that
+// validates a configuration without building a Manager.
+func CheckWindows(rules []Rule, ws []windows.Window) error {
+	names := make([]string, len(ws))
+	for i, w := range ws {
+		names[i] = w.Name
+	}
+	return checkWindowNames(rules, names)
+}
+
 // checkWindowNames reports rules that name a window not in names.
 func checkWindowNames(rules []Rule, names []string) error {
 	var errs []error

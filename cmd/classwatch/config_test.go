@@ -33,7 +33,7 @@ func env(kv ...string) func(string) string {
 
 func fixture(t *testing.T, name string, getenv func(string) string) (config, error) {
 	t.Helper()
-	return loadConfig(filepath.Join("testdata", "config", name), getenv)
+	return loadConfig(configSource{path: filepath.Join("testdata", "config", name), getenv: getenv, secrets: true})
 }
 
 // fullEnv holds the token secrets full.yml names.
@@ -65,11 +65,11 @@ func TestDefaults(t *testing.T) {
 	if got, want := cfg.sqlitePath(), filepath.Join("classwatch-data", "classwatch.db"); got != want {
 		t.Errorf("sqlite path = %q, want %q", got, want)
 	}
-	if err := defaultConfig().validate(); err != nil {
+	if err := defaultConfig().validate(true); err != nil {
 		t.Errorf("defaultConfig does not validate: %v", err)
 	}
 	// No file at all gives the same.
-	none, err := loadConfig("", env())
+	none, err := loadConfig(configSource{getenv: env(), secrets: true})
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -211,7 +211,7 @@ func TestConfigErrors(t *testing.T) {
 			}
 		})
 	}
-	if _, err := loadConfig(filepath.Join("testdata", "config", "missing.yml"), env()); !errors.Is(err, fs.ErrNotExist) {
+	if _, err := loadConfig(configSource{path: filepath.Join("testdata", "config", "missing.yml"), getenv: env()}); !errors.Is(err, fs.ErrNotExist) {
 		t.Errorf("missing file: %v", err)
 	}
 }
@@ -287,12 +287,13 @@ func TestStringParsesBack(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	back, err := parseConfig(strings.NewReader(cfg.String()), fullEnv())
+	back, err := parseConfig([]byte(cfg.String()), configSource{getenv: fullEnv(), secrets: true})
 	if err != nil {
 		t.Fatalf("parse String output: %v\n%s", err, cfg)
 	}
 	cfg.Database, back.Database = "", ""
 	cfg.Alerts, cfg.Notifiers = yaml.Node{}, yaml.Node{}
+	cfg.rules, cfg.notifiers = nil, nil
 	cfg.lines, back.lines = nil, nil
 	if !reflect.DeepEqual(cfg, back) {
 		t.Errorf("read back:\n%s\nwant:\n%s", back, cfg)
@@ -323,12 +324,12 @@ func TestExampleConfig(t *testing.T) {
 	if _, err := os.Stat(path); errors.Is(err, fs.ErrNotExist) {
 		t.Skip("deploy/classwatch.example.yml not written yet")
 	}
-	cfg, err := loadConfig(path, func(k string) string {
+	cfg, err := loadConfig(configSource{path: path, secrets: true, getenv: func(k string) string {
 		if k == databaseURLEnv {
 			return ""
 		}
 		return "example-secret-" + k
-	})
+	}})
 	if err != nil {
 		t.Fatal(err)
 	}

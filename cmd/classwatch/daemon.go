@@ -14,7 +14,6 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
-	"gopkg.in/yaml.v3"
 
 	"github.com/classwatch/classwatch/alerts"
 	"github.com/classwatch/classwatch/collector"
@@ -106,90 +105,107 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 			err = errors.Join(err, d.stop(ctx))
 		}
 	}()
-
-	d.store, err = openStore(ctx, cfg)
-	if err != nil {
+	if err := d.openStore(ctx); err != nil {
 		return d, err
 	}
-	d.onStop("store", func(context.Context) error { return d.store.Close() })
-	if err := d.store.Migrate(ctx); err != nil {
-		return d, fmt.Errorf("migrate: %w", err)
-	}
-
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(
 		collectors.NewGoCollector(),
 		collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
 	)
-
-	topts := cfg.trackerOptions()
-	topts.Store = d.store
-	d.tracker, err = windows.NewTracker(topts)
-	if err != nil {
-		return d, fmt.Errorf("build windows: %w", err)
+	if err := d.buildIngest(ctx, reg); err != nil {
+		return d, err
 	}
-
-	copts := cfg.collectorOptions()
-	copts.Store = d.store
-	copts.Registerer = reg
-	copts.Logger = log
-	copts.CommitFunc = d.tracker.Commit
-	copts.RegisterFunc = d.tracker.SetClasses
-	d.collector, err = collector.New(copts)
-	if err != nil {
-		return d, fmt.Errorf("build collector: %w", err)
-	}
-	if err := d.collector.Prepare(ctx); err != nil {
-		return d, fmt.Errorf("register models: %w", err)
-	}
-	if err := d.tracker.Load(ctx); err != nil {
-		return d, fmt.Errorf("load windows: %w", err)
-	}
-
 	d.listener, err = net.Listen("tcp", cfg.Listen)
 	if err != nil {
 		return d, fmt.Errorf("listen: %w", err)
 	}
 	d.onStop("listener", func(context.Context) error { return ignoreClosed(d.listener.Close()) })
+	if err := d.buildAlerts(reg); err != nil {
+		return d, err
+	}
+	d.buildServer(reg)
+	return d, nil
+}
 
-	rules, err := alerts.ParseRules(section(&cfg.Alerts))
+// openStore opens the configured store and brings its schema up to date.
+func (d *daemon) openStore(ctx context.Context) error {
+	st, err := openStore(ctx, d.cfg)
 	if err != nil {
-		return d, fmt.Errorf("alerts: %w", err)
+		return err
 	}
-	notifiers, err := alerts.ParseNotifiers(section(&cfg.Notifiers))
+	d.store = st
+	d.onStop("store", func(context.Context) error { return d.store.Close() })
+	if err := d.store.Migrate(ctx); err != nil {
+		return fmt.Errorf("migrate: %w", err)
+	}
+	return nil
+}
+
+// buildIngest wires the windows tracker and the collector that feeds it,
+// registers the configured models and loads the windows from the store.
+func (d *daemon) buildIngest(ctx context.Context, reg prometheus.Registerer) error {
+	topts := d.cfg.trackerOptions()
+	topts.Store = d.store
+	var err error
+	d.tracker, err = windows.NewTracker(topts)
 	if err != nil {
-		return d, fmt.Errorf("notifiers: %w", err)
+		return fmt.Errorf("build windows: %w", err)
 	}
-	ws := cfg.allWindows()
+	copts := d.cfg.collectorOptions()
+	copts.Store = d.store
+	copts.Registerer = reg
+	copts.Logger = d.log
+	copts.CommitFunc = d.tracker.Commit
+	copts.RegisterFunc = d.tracker.SetClasses
+	d.collector, err = collector.New(copts)
+	if err != nil {
+		return fmt.Errorf("build collector: %w", err)
+	}
+	if err := d.collector.Prepare(ctx); err != nil {
+		return fmt.Errorf("register models: %w", err)
+	}
+	if err := d.tracker.Load(ctx); err != nil {
+		return fmt.Errorf("load windows: %w", err)
+	}
+	return nil
+}
+
+// buildAlerts wires the alert manager over the tracker's windows.
+func (d *daemon) buildAlerts(reg prometheus.Registerer) error {
+	var err error
 	d.alerts, err = alerts.New(alerts.Options{
 		Store:        d.store,
 		View:         d.tracker.View,
-		Rules:        rules,
-		Notifiers:    notifiers,
-		Windows:      ws,
-		Confidence:   cfg.Confidence,
+		Rules:        d.cfg.rules,
+		Notifiers:    d.cfg.notifiers,
+		Windows:      d.cfg.allWindows(),
+		Confidence:   d.cfg.Confidence,
 		Registerer:   reg,
-		Logger:       log,
-		GeneratorURL: cmp.Or(cfg.ExternalURL, "http://"+d.addr()),
+		Logger:       d.log,
+		GeneratorURL: cmp.Or(d.cfg.ExternalURL, "http://"+d.addr()),
 	})
 	if err != nil {
-		return d, fmt.Errorf("build alerts: %w", err)
+		return fmt.Errorf("build alerts: %w", err)
 	}
+	return nil
+}
 
+// buildServer routes the ingest, read, alert and metrics endpoints.
+func (d *daemon) buildServer(reg *prometheus.Registry) {
 	mux := http.NewServeMux()
 	d.collector.Register(mux)
-	api.New(api.Options{Store: d.store, Tracker: d.tracker, Confidence: cfg.Confidence, Logger: log}).Register(mux)
+	api.New(api.Options{Store: d.store, Tracker: d.tracker, Confidence: d.cfg.Confidence, Logger: d.log}).Register(mux)
 	d.alerts.Register(mux)
 	// The window families (~52,000 series for 50 models × 12 classes × 4
 	// windows) bypass the registry's per-series checks; MergeGatherers
 	// reports a family name that both define.
-	metrics := windows.MergeGatherers(reg, windows.NewGatherer(d.tracker, cfg.Confidence))
+	metrics := windows.MergeGatherers(reg, windows.NewGatherer(d.tracker, d.cfg.Confidence))
 	mux.Handle("GET /metrics", api.MetricsHandler(metrics, promhttp.HandlerOpts{
 		ErrorHandling:     promhttp.ContinueOnError,
-		ErrorLog:          slog.NewLogLogger(log.Handler(), slog.LevelError),
+		ErrorLog:          slog.NewLogLogger(d.log.Handler(), slog.LevelError),
 		EnableOpenMetrics: true,
 	}))
-
 	d.server = &http.Server{
 		Handler:           mux,
 		ReadHeaderTimeout: 10 * time.Second,
@@ -197,9 +213,8 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 		// must not hold one for long.
 		ReadTimeout: time.Minute,
 		IdleTimeout: 2 * time.Minute,
-		ErrorLog:    slog.NewLogLogger(log.Handler(), slog.LevelWarn),
+		ErrorLog:    slog.NewLogLogger(d.log.Handler(), slog.LevelWarn),
 	}
-	return d, nil
 }
 
 // ignoreClosed drops the error of closing a listener the server already
@@ -209,14 +224,6 @@ func ignoreClosed(err error) error {
 		return nil
 	}
 	return err
-}
-
-// section returns a config section's node, or nil when the file lacks it.
-func section(n *yaml.Node) *yaml.Node {
-	if n.Kind == 0 {
-		return nil
-	}
-	return n
 }
 
 // addr is the address the daemon listens on (useful with port 0).

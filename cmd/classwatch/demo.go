@@ -50,7 +50,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	if err := os.WriteFile(cfgPath, []byte(text), 0o600); err != nil {
 		return fmt.Errorf("demo: %w", err)
 	}
-	cfg, err := loadConfigWithFlags(cfgPath, "", "")
+	cfg, err := loadConfig(configSource{path: cfgPath, secrets: true})
 	if err != nil {
 		return fmt.Errorf("demo config: %w", err)
 	}

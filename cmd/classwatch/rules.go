@@ -4,12 +4,10 @@ import (
 	"context"
 	"fmt"
 	"io"
-
-	"github.com/classwatch/classwatch/alerts"
 )
 
-// runRules is "classwatch rules check F": validate the alerts and notifiers
-// sections of a config file without starting anything.
+// runRules is "classwatch rules check F": validate a config file, its
+// alerts and notifiers sections included, without starting anything.
 func runRules(_ context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("rules", "rules check FILE", stderr)
 	if err := parseFlags(fs, args, 2); err != nil {
@@ -19,10 +17,12 @@ func runRules(_ context.Context, args []string, stdout, stderr io.Writer) error 
 		fs.Usage()
 		return usagef("rules: unknown subcommand %q (want check)", fs.Arg(0))
 	}
+	// The loader serve uses, so a file that passes here starts; secrets
+	// stay in the environment of the daemon.
 	file := fs.Arg(1)
-	if err := alerts.CheckFile(file); err != nil {
-		return fmt.Errorf("%s: %w", file, err)
+	if _, err := loadConfig(configSource{path: file}); err != nil {
+		return err
 	}
-	fmt.Fprintf(stdout, "%s: rules are valid\n", file)
+	fmt.Fprintf(stdout, "%s: config and rules are valid\n", file)
 	return nil
 }

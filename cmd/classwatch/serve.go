@@ -5,7 +5,6 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
-	"os"
 )
 
 // runServe is "classwatch serve": load the config, wire the daemon and serve
@@ -19,7 +18,7 @@ func runServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	if err := parseFlags(fs, args, 0); err != nil {
 		return err
 	}
-	cfg, err := loadConfigWithFlags(*path, *listen, *database)
+	cfg, err := loadConfig(configSource{path: *path, listen: *listen, database: *database, secrets: true})
 	if err != nil {
 		return err
 	}
@@ -30,25 +29,6 @@ func runServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	}
 	fmt.Fprintf(stdout, "classwatch listening on http://%s/\n", d.addr())
 	return d.serve(ctx)
-}
-
-// loadConfigWithFlags loads the config file and applies the command-line
-// overrides, which win over both the file and the environment.
-func loadConfigWithFlags(path, listen, database string) (config, error) {
-	cfg, err := loadConfig(path, os.Getenv)
-	if err != nil {
-		return cfg, err
-	}
-	if listen != "" {
-		cfg.Listen = listen
-	}
-	if database != "" {
-		cfg.Database = database
-	}
-	if err := cfg.validate(); err != nil {
-		return cfg, err
-	}
-	return cfg, nil
 }
 
 // newLogger returns the process logger writing to w.

@@ -28,7 +28,7 @@ func addStoreFlags(fs *flag.FlagSet) storeFlags {
 // pending migrations; otherwise it checks that the store answers and is
 // migrated, so a read-only command never changes the schema.
 func (f storeFlags) open(ctx context.Context, migrate bool) (config, store.Store, error) {
-	cfg, err := loadConfigWithFlags(*f.config, "", *f.database)
+	cfg, err := loadConfig(configSource{path: *f.config, database: *f.database})
 	if err != nil {
 		return cfg, nil, err
 	}
