@@ -382,6 +382,10 @@ type Store interface {
 	// reader is valid until readFunc returns and is not safe for
 	// concurrent use.
 	Snapshot(ctx context.Context, fixedFunc func(), readFunc func(r SnapshotReader) error) error
+
+	// Events streams the history of q's predictions in time order (see
+	// Event and EventQuery); the rule backtest replays it.
+	Events(ctx context.Context, q EventQuery, fn func(*Event) error) error
 }
 
 // SnapshotReader reads one consistent snapshot of a store; see

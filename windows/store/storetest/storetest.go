@@ -55,6 +55,7 @@ func Exercise(t *testing.T, newStore func(t *testing.T) store.Store) {
 	t.Run("ConcurrentJoin", func(t *testing.T) { testConcurrentJoin(t, newStore(t)) })
 	t.Run("OrderIndependence", func(t *testing.T) { testOrderIndependence(t, newStore) })
 	t.Run("ReferenceHistory", func(t *testing.T) { testReferenceHistory(t, newStore) })
+	t.Run("Events", func(t *testing.T) { testEvents(t, newStore) })
 }
 
 // bucketWidth is the bucket every test uses (the configured default).
