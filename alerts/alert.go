@@ -53,7 +53,7 @@ type Result struct {
 	Count int64 `json:"count"`
 	// Interval bounds Value at the rule's confidence.
 	Interval *[2]float64 `json:"interval,omitempty"`
-	// Threshold is the floor, ceiling, PSI threshold or silence limit
+	// Threshold is the floor, ceiling, PSI threshold or no_traffic limit
 	// (seconds).
 	Threshold *float64 `json:"threshold,omitempty"`
 	// Confidence is the level intervals and tests used.
@@ -73,7 +73,7 @@ type Result struct {
 	DifferenceInterval *[2]float64 `json:"difference_interval,omitempty"`
 	Margin             *float64    `json:"margin,omitempty"`
 	Reference          *Figures    `json:"reference,omitempty"`
-	// LastPrediction is the latest prediction time of a silence rule.
+	// LastPrediction is the latest prediction time of a no_traffic rule.
 	LastPrediction *time.Time `json:"last_prediction,omitempty"`
 }
 
@@ -122,7 +122,7 @@ func instanceKey(rule, model, class, predicted string) string {
 }
 
 // labels returns the alert's label set.
-func (r *rule) labels(model, class, predicted string) map[string]string {
+func (r *Compiled) labels(model, class, predicted string) map[string]string {
 	l := maps.Clone(r.Labels)
 	if l == nil {
 		l = make(map[string]string, 5)
@@ -154,7 +154,7 @@ type TemplateData struct {
 // annotate renders the rule's annotations for a; a template that fails is
 // reported in its own text rather than dropped. A "summary" annotation is
 // added when the rule has none.
-func (r *rule) annotate(a *Alert) {
+func (r *Compiled) annotate(a *Alert) {
 	res := a.Result
 	d := TemplateData{
 		Rule: a.Rule, Kind: string(a.Kind), Model: a.Model, Class: a.Class, Predicted: a.Predicted,
@@ -202,44 +202,10 @@ func summary(a *Alert) string {
 	if res.Reason != "" {
 		return fmt.Sprintf("%s %s: %s", a.Rule, subject, res.Reason)
 	}
-	var ref Figures
-	if res.Reference != nil {
-		ref = *res.Reference
+	if spec, ok := kinds[a.Kind]; ok {
+		return spec.describe(a, subject)
 	}
-	switch a.Kind {
-	case KindFloor, KindCeiling:
-		s := fmt.Sprintf("%s of %s over %s: %s", a.Metric, subject, a.Window, num(res.Value))
-		if res.Interval != nil {
-			s += fmt.Sprintf(" (%g%% interval %.4g–%.4g, n=%d)", 100*res.Confidence, res.Interval[0], res.Interval[1], res.Count)
-		} else {
-			s += fmt.Sprintf(" (n=%d)", res.Count)
-		}
-		return s + fmt.Sprintf("; %s %s", a.Kind, num(res.Threshold))
-	case KindDrop:
-		return fmt.Sprintf("%s of %s over %s: %s (n=%d) against %s (n=%d) in the reference; one-sided p=%.3g, margin %s",
-			a.Metric, subject, a.Window, num(res.Value), res.Count, num(ref.Value), ref.Count, deref(res.PValue), num(res.Margin))
-	case KindConfusionRise:
-		return fmt.Sprintf("share of %s predicted as %s on %s over %s: %s (n=%d) against %s (n=%d) in the reference; one-sided p=%.3g, margin %s",
-			a.Class, a.Predicted, a.Model, a.Window, num(res.Value), res.Count, num(ref.Value), ref.Count, deref(res.PValue), num(res.Margin))
-	case KindPrevalenceShift, KindOutputShift:
-		what := "actual-class mix"
-		if a.Kind == KindOutputShift {
-			what = "predicted-class mix"
-		}
-		s := fmt.Sprintf("%s of %s over %s against the reference (n=%d vs %d):", what, a.Model, a.Window, res.Count, ref.Count)
-		if res.PValue != nil {
-			s += fmt.Sprintf(" p=%.3g", *res.PValue)
-		}
-		return s + fmt.Sprintf(" PSI=%s", num(res.PSI))
-	case KindSilence:
-		limit := time.Duration(deref(res.Threshold) * float64(time.Second))
-		quiet := time.Duration(deref(res.Value) * float64(time.Second))
-		if res.LastPrediction == nil {
-			return fmt.Sprintf("no prediction from %s for %s (none yet); limit %s", a.Model, quiet, limit)
-		}
-		return fmt.Sprintf("last prediction from %s at %s (%s ago); limit %s", a.Model, res.LastPrediction.Format(time.RFC3339), quiet, limit)
-	}
-	return subject
+	return subject // a stored alert of a kind no longer known
 }
 
 func num(p *float64) string {

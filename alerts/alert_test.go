@@ -27,7 +27,7 @@ func TestSummary(t *testing.T) {
 		{Alert{Kind: KindOutputShift, Model: "card-fraud", Window: "1h",
 			Result: Result{Value: ptr(0.31), PSI: ptr(0.31), Count: 200, Reference: &Figures{Count: 1000}}},
 			"predicted-class mix of card-fraud over 1h against the reference (n=200 vs 1000): PSI=0.31"},
-		{Alert{Kind: KindSilence, Model: "card-fraud",
+		{Alert{Kind: KindNoTraffic, Model: "card-fraud",
 			Result: Result{Value: ptr(2700.0), Threshold: ptr(1800.0), LastPrediction: &last}},
 			"last prediction from card-fraud at 2026-03-01T11:15:00Z (45m0s ago); limit 30m0s"},
 		{Alert{Rule: "recall-drop", Kind: KindDrop, Model: "card-fraud", Class: "fraud", Window: "1d",

@@ -13,21 +13,12 @@ import (
 	"github.com/classwatch/classwatch/windows"
 )
 
-// ruleKeys are the keys every rule may have; kindKeys those only some
-// kinds take. A key that exists but does not apply to the rule's kind is
-// an error, since it would silently do nothing.
+// ruleKeys are the keys every rule may have; the kinds table lists those
+// only some kinds take. A key that exists but does not apply to the rule's
+// kind is an error, since it would silently do nothing.
 var (
 	ruleKeys = []string{"name", "kind", "model", "window", "schedule", "severity", "labels",
 		"annotations", "fire_after", "resolve_after", "confidence", "min_count"}
-	kindKeys = map[Kind][]string{
-		KindFloor:           {"metric", "classes", "threshold", "interval"},
-		KindCeiling:         {"metric", "classes", "threshold", "interval"},
-		KindDrop:            {"metric", "classes", "margin", "reference"},
-		KindPrevalenceShift: {"reference", "test", "psi_threshold"},
-		KindOutputShift:     {"reference", "test", "psi_threshold"},
-		KindConfusionRise:   {"pairs", "margin", "reference"},
-		KindSilence:         {"silent_for"},
-	}
 	referenceKeys = []string{"window", "from", "to"}
 	pairKeys      = []string{"actual", "predicted"}
 )
@@ -60,7 +51,7 @@ type ruleYAML struct {
 	Test         string   `yaml:"test"`
 	PSIThreshold *float64 `yaml:"psi_threshold"`
 	Pairs        []Pair   `yaml:"pairs"`
-	SilentFor    string   `yaml:"silent_for"`
+	QuietFor     string   `yaml:"quiet_for"`
 }
 
 // ParseRules reads the alerts section of the daemon's config, a sequence of
@@ -96,47 +87,76 @@ func ParseRules(node *yaml.Node) ([]Rule, error) {
 // parseRule decodes and checks one rule node; it returns the rule with its
 // defaults filled in.
 func parseRule(n *yaml.Node, i int) (Rule, []error) {
-	var errs []error
 	label := ruleLabel(stringValue(n, "name"), i)
-	fail := func(line int, format string, args ...any) {
-		errs = append(errs, fmt.Errorf("line %d: rule %s: %s", line, label, fmt.Sprintf(format, args...)))
-	}
+	p := &ruleParser{n: n, label: label}
 	if n.Kind != yaml.MappingNode {
-		fail(n.Line, "expected a mapping of rule settings")
-		return Rule{}, errs
+		p.fail(n.Line, "expected a mapping of rule settings")
+		return Rule{}, p.errs
 	}
-	kind := Kind(stringValue(n, "kind"))
-	allowed := ruleKeys
-	if extra, ok := kindKeys[kind]; ok {
-		allowed = append(slices.Clone(ruleKeys), extra...)
+	p.checkKeys()
+	if len(p.errs) > 0 {
+		return Rule{}, p.errs
 	}
+	var y ruleYAML
+	if err := n.Decode(&y); err != nil {
+		return Rule{}, decodeErrors(err, "rule "+label)
+	}
+	r := p.rule(&y)
+	for _, k := range kinds[r.Kind].required {
+		if child(n, k) == nil {
+			p.fail(n.Line, "%s: required", k)
+		}
+	}
+	r = r.withDefaults()
+	_, ferrs := compile(r)
+	for _, fe := range ferrs {
+		p.fail(valueLine(n, fe.key), "%v", fe)
+	}
+	return r, p.errs
+}
+
+// ruleParser collects the problems of one rule node.
+type ruleParser struct {
+	n     *yaml.Node
+	label string
+	errs  []error
+}
+
+func (p *ruleParser) fail(line int, format string, args ...any) {
+	p.errs = append(p.errs, fmt.Errorf("line %d: rule %s: %s", line, p.label, fmt.Sprintf(format, args...)))
+}
+
+// checkKeys reports keys that no rule takes, keys of another kind and
+// unknown keys of the nested mappings.
+func (p *ruleParser) checkKeys() {
+	n := p.n
+	spec, known := kinds[Kind(stringValue(n, "kind"))]
+	allowed := append(slices.Clone(ruleKeys), spec.keys...)
 	for _, k := range keys(n) {
 		if slices.Contains(allowed, k.Value) {
 			continue
 		}
 		switch {
 		case !isKindKey(k.Value):
-			fail(k.Line, "unknown key %q", k.Value)
-		case kind.valid():
-			fail(k.Line, "%s: does not apply to kind %s", k.Value, kind)
+			p.fail(k.Line, "unknown key %q", k.Value)
+		case known:
+			p.fail(k.Line, "%s: does not apply to kind %s", k.Value, stringValue(n, "kind"))
 		}
 	}
 	if v := child(n, "reference"); v != nil {
-		errs = append(errs, checkKeys(v, "rule "+label+": reference", referenceKeys)...)
+		p.errs = append(p.errs, checkKeys(v, "rule "+p.label+": reference", referenceKeys)...)
 	}
 	if v := child(n, "pairs"); v != nil && v.Kind == yaml.SequenceNode {
-		for _, p := range v.Content {
-			errs = append(errs, checkKeys(p, "rule "+label+": pairs", pairKeys)...)
+		for _, pr := range v.Content {
+			p.errs = append(p.errs, checkKeys(pr, "rule "+p.label+": pairs", pairKeys)...)
 		}
 	}
-	if len(errs) > 0 {
-		return Rule{}, errs
-	}
+}
 
-	var y ruleYAML
-	if err := n.Decode(&y); err != nil {
-		return Rule{}, decodeErrors(err, "rule "+label)
-	}
+// rule converts the decoded settings, reporting values that decoded but
+// are out of range for their type of setting.
+func (p *ruleParser) rule(y *ruleYAML) Rule {
+	n := p.n
 	r := Rule{
 		Name: y.Name, Kind: Kind(y.Kind), Model: y.Model, Window: y.Window,
 		Schedule: y.Schedule, Severity: y.Severity, Labels: y.Labels, Annotations: y.Annotations,
@@ -145,85 +165,84 @@ func parseRule(n *yaml.Node, i int) (Rule, []error) {
 	}
 	// Settings whose zero means "default" in Go refuse an explicit zero, so
 	// that "fire_after: 0" is not quietly read as 1.
-	positive := func(key string, p *int64) int64 {
-		if p == nil {
-			return 0
-		}
-		if *p <= 0 {
-			fail(valueLine(n, key), "%s: must be at least 1", key)
-			return 0
-		}
-		return *p
-	}
-	asInt64 := func(p *int) *int64 {
-		if p == nil {
-			return nil
-		}
-		v := int64(*p)
-		return &v
-	}
-	r.FireAfter = int(positive("fire_after", asInt64(y.FireAfter)))
-	r.ResolveAfter = int(positive("resolve_after", asInt64(y.ResolveAfter)))
-	r.MinCount = positive("min_count", y.MinCount)
+	r.FireAfter = int(p.positive("fire_after", intPtr64(y.FireAfter)))
+	r.ResolveAfter = int(p.positive("resolve_after", intPtr64(y.ResolveAfter)))
+	r.MinCount = p.positive("min_count", y.MinCount)
 	if c := y.Confidence; c != nil {
 		if !(*c > 0 && *c < 1) {
-			fail(valueLine(n, "confidence"), "confidence: %g must lie strictly between 0 and 1", *c)
+			p.fail(valueLine(n, "confidence"), "confidence: %g must lie strictly between 0 and 1", *c)
 		} else {
 			r.Confidence = *c
 		}
 	}
-	if (kind == KindFloor || kind == KindCeiling) && y.Threshold == nil {
-		fail(n.Line, "threshold: required")
-	} else if y.Threshold != nil {
+	if y.Threshold != nil {
 		r.Threshold = *y.Threshold
 	}
 	if y.PSIThreshold != nil {
 		if *y.PSIThreshold > 0 {
 			r.PSIThreshold = *y.PSIThreshold
 		} else {
-			fail(valueLine(n, "psi_threshold"), "psi_threshold: must be positive")
+			p.fail(valueLine(n, "psi_threshold"), "psi_threshold: must be positive")
 		}
 	}
-	if y.SilentFor != "" {
-		d, err := windows.ParseDuration(y.SilentFor)
-		if err != nil {
-			fail(valueLine(n, "silent_for"), "silent_for: %v", err)
-		}
-		r.SilentFor = d
+	r.QuietFor = p.duration("quiet_for", y.QuietFor)
+	if y.Reference != nil {
+		r.Reference = p.reference(y.Reference.Window, y.Reference.From, y.Reference.To)
 	}
-	if ref := y.Reference; ref != nil {
-		r.Reference.Window = ref.Window
-		refNode := child(n, "reference")
-		for _, f := range []struct {
-			key string
-			s   string
-			t   *time.Time
-		}{{"from", ref.From, &r.Reference.From}, {"to", ref.To, &r.Reference.To}} {
-			if f.s == "" {
-				continue
-			}
-			t, err := time.Parse(time.RFC3339, f.s)
-			if err != nil {
-				fail(valueLine(refNode, f.key), "reference: %s: %q is not an RFC 3339 time", f.key, f.s)
-			}
-			*f.t = t.UTC()
-		}
-	}
-	r = r.withDefaults()
-	_, ferrs := compile(r)
-	for _, fe := range ferrs {
-		fail(valueLine(n, fe.key), "%v", fe)
-	}
-	return r, errs
+	return r
 }
 
-func isKindKey(k string) bool {
-	for _, ks := range kindKeys {
-		if slices.Contains(ks, k) {
-			return true
-		}
+// positive returns *v, 0 when absent, reporting a value below 1.
+func (p *ruleParser) positive(key string, v *int64) int64 {
+	if v == nil {
+		return 0
 	}
-	return false
+	if *v <= 0 {
+		p.fail(valueLine(p.n, key), "%s: must be at least 1", key)
+		return 0
+	}
+	return *v
+}
+
+// duration parses the duration s of key, 0 when empty.
+func (p *ruleParser) duration(key, s string) time.Duration {
+	if s == "" {
+		return 0
+	}
+	d, err := windows.ParseDuration(s)
+	if err != nil {
+		p.fail(valueLine(p.n, key), "%s: %v", key, err)
+	}
+	return d
+}
+
+// reference parses a reference mapping's values.
+func (p *ruleParser) reference(window, from, to string) Reference {
+	ref := Reference{Window: window}
+	refNode := child(p.n, "reference")
+	for _, f := range []struct {
+		key string
+		s   string
+		t   *time.Time
+	}{{"from", from, &ref.From}, {"to", to, &ref.To}} {
+		if f.s == "" {
+			continue
+		}
+		t, err := time.Parse(time.RFC3339, f.s)
+		if err != nil {
+			p.fail(valueLine(refNode, f.key), "reference: %s: %q is not an RFC 3339 time", f.key, f.s)
+		}
+		*f.t = t.UTC()
+	}
+	return ref
+}
+
+func intPtr64(p *int) *int64 {
+	if p == nil {
+		return nil
+	}
+	v := int64(*p)
+	return &v
 }
 
 // CheckFile validates the alerts and notifiers sections of the config file

@@ -35,9 +35,9 @@ alerts:
     window: 1d
     reference: {window: 7d-matured}
   - name: quiet
-    kind: silence
+    kind: no_traffic
     model: all
-    silent_for: 1d2h
+    quiet_for: 1d2h
 `, "alerts"))
 	if err != nil {
 		t.Fatalf("ParseRules: %v", err)
@@ -60,7 +60,7 @@ alerts:
 		{"drop metric", drop.Metric, "recall"},
 		{"drop margin", drop.Margin, 0.0},
 		{"reference", drop.Reference.Window, "7d-matured"},
-		{"silent_for", quiet.SilentFor, 26 * time.Hour},
+		{"quiet_for", quiet.QuietFor, 26 * time.Hour},
 	} {
 		if c.got != c.want {
 			t.Errorf("%s = %v, want %v", c.what, c.got, c.want)
@@ -124,23 +124,23 @@ alerts:
 		{"bad schedule", `
 alerts:
   - name: r
-    kind: silence
+    kind: no_traffic
     model: m
     schedule: "every minute"
-    silent_for: 1h`, []string{`line 6: rule "r": schedule: "every minute"`}},
+    quiet_for: 1h`, []string{`line 6: rule "r": schedule: "every minute"`}},
 		{"zero fire_after", `
 alerts:
   - name: r
-    kind: silence
+    kind: no_traffic
     model: m
-    silent_for: 1h
+    quiet_for: 1h
     fire_after: 0`, []string{`line 7: rule "r": fire_after: must be at least 1`}},
 		{"confidence of 1", `
 alerts:
   - name: r
-    kind: silence
+    kind: no_traffic
     model: m
-    silent_for: 1h
+    quiet_for: 1h
     confidence: 1`, []string{`line 7: rule "r": confidence: 1 must lie strictly between 0 and 1`}},
 		{"reference missing", `
 alerts:
@@ -184,20 +184,20 @@ alerts:
 		{"reserved label and bad template", `
 alerts:
   - name: r
-    kind: silence
+    kind: no_traffic
     model: m
-    silent_for: 1h
+    quiet_for: 1h
     labels: {severity: high}
     annotations: {summary: "{{.Value"}`, []string{`line 7: rule "r": labels: "severity" is set by classwatch`, `line 8: rule "r": annotations: summary:`}},
 		{"repeated name and missing model", `
 alerts:
   - name: r
-    kind: silence
+    kind: no_traffic
     model: m
-    silent_for: 1h
+    quiet_for: 1h
   - name: r
-    kind: silence
-    silent_for: 1h`, []string{`line 7: rule "r": name: repeated`, `rule "r": model: required`}},
+    kind: no_traffic
+    quiet_for: 1h`, []string{`line 7: rule "r": name: repeated`, `rule "r": model: required`}},
 		{"test none without psi", `
 alerts:
   - name: r

@@ -30,7 +30,8 @@
 //     which needs no labels) distribution against the reference's, by a
 //     chi-square or G test of homogeneity (sparse classes pooled) and/or
 //     the population stability index.
-//   - silence: no prediction from a model for a duration.
+//   - no_traffic: no prediction from a model has arrived for a duration
+//     (the producer or its pipeline is probably broken).
 //
 // Every figure needs min_count observations (30 unless set) in the current
 // period and in the reference; below that the outcome is unknown. The
@@ -42,8 +43,9 @@
 // The daemon's config holds the rules under "alerts:" and the receivers
 // under "notifiers:" (ParseRules, ParseNotifiers; "classwatch rules check
 // F" runs CheckFile). Every rule takes name, kind, model (a name or "all"),
-// window (not silence), and optionally schedule (cron, UTC; default every
-// minute), severity (default warning), labels, annotations (text/template
+// window (not no_traffic), and optionally schedule (cron, UTC; default
+// every minute), severity (critical, warning or info; default warning),
+// labels, annotations (text/template
 // over TemplateData), fire_after, resolve_after (default 1), confidence
 // (default: the daemon's) and min_count (default 30). By kind:
 //
@@ -52,7 +54,7 @@
 //	confusion_rise    reference, pairs [{actual, predicted}], margin
 //	prevalence_shift  reference, test (chi_square, g_test, none), psi_threshold
 //	output_shift      reference, test, psi_threshold
-//	silence           silent_for
+//	no_traffic        quiet_for
 //
 // A reference is {window: NAME} or {from: RFC 3339, to: RFC 3339}. For
 // example:
@@ -65,7 +67,7 @@
 //	    classes: [fraud]
 //	    margin: 0.05
 //	    reference: {window: 7d-matured}
-//	    severity: page
+//	    severity: critical
 //	    fire_after: 2
 //	notifiers:
 //	  - {name: oncall, type: alertmanager, url: "http://127.0.0.1:9093"}
@@ -76,6 +78,14 @@
 // doubling), queue_size (1000) and, for alertmanager, resend_interval (1m).
 // Unknown keys, keys that do not apply to a rule's kind, and bad values are
 // errors naming the key and its line.
+//
+// Each kind is one entry of the kinds table (kinds.go): its keys, its
+// defaults, and a constructor that checks the rule's settings and returns
+// the kind's Evaluator. A kind that is not in the table is rejected when
+// the rule is parsed (naming the key and line) or compiled, so every
+// compiled rule has an evaluator. To add a kind: add its constant and
+// fields to rule.go, its entry to the table, and its evaluator in a file
+// of its own (kind_*.go).
 //
 // Rules are evaluated at their cron schedule's times (UTC). Each
 // evaluation yields, per alert instance (rule × model × class, or × pair of
@@ -110,7 +120,9 @@
 // At start and at each scheduled time a replica that does not hold the
 // store's "alerts" lock (Store.TryLead; a PostgreSQL advisory lock) tries to
 // take it, and evaluates only when it holds it. The holder checks the lock
-// (Lease.Alive) before each evaluation.
+// (Lease.Alive) before each evaluation. Package lease (windows/store/lease)
+// keeps the lock; its documentation gives the states and the failure
+// handling common to every such lock.
 //
 //	follower ──TryLead succeeds──► load state from the store ──► leader
 //	    ▲                                                          │
@@ -135,8 +147,9 @@
 //     and the next run counts the scheduled times passed over in
 //     classwatch_alert_evaluations_missed_total; it evaluates at the latest
 //     scheduled time.
-//   - A notifier fails: each notifier has its own bounded queue and worker,
-//     so evaluation never waits for it. Each attempt has its own timeout;
+//   - A notifier fails: delivery is kept apart from evaluation
+//     (delivery.go, queue.go): each notifier has its own bounded queue and
+//     worker, so evaluation never waits for it. Each attempt has its own timeout;
 //     network errors and 5xx (or 429) answers are retried with a doubling
 //     pause; the batch is given up after max_attempts, logged, counted in
 //     classwatch_alert_notifications_failed_total and listed under

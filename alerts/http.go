@@ -65,9 +65,7 @@ func (m *Manager) handleAlerts(w http.ResponseWriter, r *http.Request) {
 		return cmp.Or(cmp.Compare(a.Rule, b.Rule), cmp.Compare(a.Model, b.Model),
 			cmp.Compare(a.Class, b.Class), cmp.Compare(a.Predicted, b.Predicted))
 	})
-	m.deadMu.Lock()
-	resp.Undelivered = append([]Undelivered{}, m.dead...)
-	m.deadMu.Unlock()
+	resp.Undelivered = m.delivery.undelivered()
 	writeJSON(w, resp)
 }
 

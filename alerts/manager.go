@@ -9,7 +9,6 @@ import (
 	"net/http"
 	"slices"
 	"sync"
-	"sync/atomic"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -17,6 +16,7 @@ import (
 
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store"
+	"github.com/classwatch/classwatch/windows/store/lease"
 )
 
 // LeaseName is the single-evaluator lock the manager takes in the store.
@@ -69,23 +69,24 @@ type Options struct {
 
 // Manager evaluates the rules on their schedules while it holds the
 // evaluator lock, keeps alert state in the store and hands state changes
-// to the notifiers. It is safe for concurrent use.
+// to its dispatcher, which delivers them. It is safe for concurrent use.
 type Manager struct {
 	store        Store
 	view         ViewFunc
-	rules        []*rule
-	queues       []*queue
+	rules        []*Compiled
+	delivery     *dispatcher
+	leader       *lease.Leader
 	confidence   float64
 	log          *slog.Logger
 	now          func() time.Time
 	generatorURL string
 	metrics      *metrics
 	// started is when the manager was made: a model that never sent a
-	// prediction counts as silent since then.
+	// prediction has had no traffic since then.
 	started time.Time
 
 	// evalMu serialises evaluations, state loads and delivery marks: all
-	// the writers of alert state.
+	// the writers of alert state. The leader's lock is taken before it.
 	evalMu sync.Mutex
 	// mu guards instances for readers that must not wait for an evaluation
 	// (metrics scrapes, resends). Writers hold evalMu, then mu.
@@ -93,34 +94,10 @@ type Manager struct {
 	instances map[string]*instance
 	loaded    bool
 
-	// leadMu guards lease; leading mirrors lease != nil for readers that
-	// hold evalMu (lock order: leadMu before evalMu).
-	leadMu  sync.Mutex
-	lease   store.Lease
-	leading atomic.Bool
-
-	deadMu sync.Mutex
-	dead   []Undelivered
-
 	lifeMu  sync.Mutex
 	cron    *cron.Cron
-	drain   chan struct{}
-	cancel  context.CancelFunc
-	workers sync.WaitGroup
 	running bool
 	stopped bool
-}
-
-// maxUndelivered bounds the dead-letter list kept for GET /v1/alerts.
-const maxUndelivered = 100
-
-// Undelivered is a notification given up after its last attempt.
-type Undelivered struct {
-	Notifier string    `json:"notifier"`
-	At       time.Time `json:"at"`
-	Error    string    `json:"error"`
-	Alerts   []string  `json:"alerts"` // keys
-	States   []State   `json:"states"`
 }
 
 // New checks the rules and notifiers and builds a Manager; it starts
@@ -129,7 +106,7 @@ func New(opts Options) (*Manager, error) {
 	if opts.Store == nil || opts.View == nil {
 		return nil, errors.New("new alert manager: Store and View are required")
 	}
-	rules, err := checkRules(opts.Rules)
+	rules, err := CompileRules(opts.Rules)
 	if err != nil {
 		return nil, fmt.Errorf("check alert rules: %w", err)
 	}
@@ -160,32 +137,14 @@ func New(opts Options) (*Manager, error) {
 		m.now = time.Now
 	}
 	m.started = m.now()
-	client := cmp.Or(opts.HTTPClient, &http.Client{})
-	seen := make(map[string]bool)
-	var errs []error
-	for i, c := range opts.Notifiers {
-		c = c.withDefaults()
-		for _, fe := range c.check() {
-			errs = append(errs, fmt.Errorf("notifier %s: %w", ruleLabel(c.Name, i), fe))
-		}
-		if seen[c.Name] {
-			errs = append(errs, fmt.Errorf("notifier %s: name: repeated", ruleLabel(c.Name, i)))
-		}
-		seen[c.Name] = true
-		if len(errs) > 0 {
-			continue
-		}
-		n, err := c.build(client, m.now)
-		if err != nil {
-			errs = append(errs, err)
-			continue
-		}
-		m.queues = append(m.queues, newQueue(m, c, n))
+	m.delivery, err = newDispatcher(opts.Notifiers, cmp.Or(opts.HTTPClient, &http.Client{}), m.log, m.now)
+	if err != nil {
+		return nil, err
 	}
-	if err := errors.Join(errs...); err != nil {
-		return nil, fmt.Errorf("check notifiers: %w", err)
-	}
+	m.delivery.firing, m.delivery.delivered = m.firing, m.delivered
+	m.leader = lease.New(m.store, LeaseName, lease.Options{Acquired: m.acquired, Lost: m.lost})
 	m.metrics = newMetrics(m)
+	m.delivery.metrics = m.metrics
 	if opts.Registerer != nil {
 		if err := m.metrics.register(opts.Registerer); err != nil {
 			return nil, fmt.Errorf("register alert metrics: %w", err)
@@ -205,16 +164,7 @@ func (m *Manager) Start(ctx context.Context) error {
 		return errors.New("start alert manager: already started")
 	}
 	m.running = true
-	wctx, cancel := context.WithCancel(ctx)
-	m.cancel = cancel
-	m.drain = make(chan struct{})
-	for _, q := range m.queues {
-		m.workers.Add(1)
-		go func() {
-			defer m.workers.Done()
-			q.run(wctx, m.drain)
-		}()
-	}
+	m.delivery.start(ctx)
 
 	cl := cronLogger{log: m.log}
 	m.cron = cron.New(
@@ -224,7 +174,7 @@ func (m *Manager) Start(ctx context.Context) error {
 	)
 	now := m.now().UTC()
 	var specs []string
-	groups := make(map[string][]*rule)
+	groups := make(map[string][]*Compiled)
 	for _, r := range m.rules {
 		if _, ok := groups[r.Schedule]; !ok {
 			specs = append(specs, r.Schedule)
@@ -261,33 +211,15 @@ func (m *Manager) Stop(ctx context.Context) error {
 	case <-ctx.Done():
 		errs = append(errs, fmt.Errorf("wait for running evaluations: %w", context.Cause(ctx)))
 	}
-	close(m.drain)
-	flushed := make(chan struct{})
-	go func() {
-		m.workers.Wait()
-		close(flushed)
-	}()
-	select {
-	case <-flushed:
-	case <-ctx.Done():
-		errs = append(errs, fmt.Errorf("deliver queued notifications: %w", context.Cause(ctx)))
-		m.cancel()
-		<-flushed
+	if err := m.delivery.stop(ctx); err != nil {
+		errs = append(errs, err)
 	}
-	m.cancel()
-
-	m.leadMu.Lock()
-	if m.lease != nil {
-		rctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
-		if err := m.lease.Release(rctx); err != nil {
-			errs = append(errs, fmt.Errorf("release evaluator lock: %w", err))
-		}
-		cancel()
-		m.lease = nil
-		m.leading.Store(false)
-		m.metrics.leader.Set(0)
+	rctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), 5*time.Second)
+	defer cancel()
+	if err := m.leader.Release(rctx); err != nil {
+		errs = append(errs, fmt.Errorf("release evaluator lock: %w", err))
 	}
-	m.leadMu.Unlock()
+	m.metrics.leader.Set(0)
 	return errors.Join(errs...)
 }
 
@@ -296,7 +228,7 @@ func (m *Manager) Stop(ctx context.Context) error {
 type scheduledJob struct {
 	m        *Manager
 	schedule cron.Schedule
-	rules    []*rule
+	rules    []*Compiled
 	// next is the first scheduled time not yet evaluated.
 	next time.Time
 }
@@ -325,55 +257,41 @@ func (j *scheduledJob) run(ctx context.Context) {
 }
 
 // lead reports whether this replica holds the evaluator lock, taking it
-// when free. Taking it loads the alert state from the store (another
-// replica may have changed it) and queues what the notifiers still need.
+// when free (see acquired and lost).
 func (m *Manager) lead(ctx context.Context) bool {
-	m.leadMu.Lock()
-	defer m.leadMu.Unlock()
-	if m.lease != nil {
-		err := m.lease.Alive(ctx)
-		if err == nil {
-			return true
-		}
-		m.log.Warn("lost the alert evaluator lock", "err", err)
-		if err := m.lease.Release(ctx); err != nil {
-			m.log.Debug("release lost evaluator lock", "err", err)
-		}
-		m.lease = nil
-		m.leading.Store(false)
-		m.metrics.leader.Set(0)
-		m.evalMu.Lock()
-		m.mu.Lock()
-		m.instances, m.loaded = make(map[string]*instance), false
-		m.mu.Unlock()
-		m.evalMu.Unlock()
+	held, err := m.leader.Lead(ctx)
+	if err != nil && !errors.Is(err, context.Canceled) {
+		m.log.Error("take the alert evaluator lock", "err", err)
 	}
-	l, err := m.store.TryLead(ctx, LeaseName)
-	if err != nil {
-		if !errors.Is(err, context.Canceled) {
-			m.log.Error("take the alert evaluator lock", "err", err)
-		}
-		return false
-	}
-	if l == nil {
-		return false
-	}
+	return held
+}
+
+// acquired runs when this replica takes the evaluator lock: it loads the
+// alert state from the store (another replica may have changed it), and
+// queues what the notifiers still need and the firing alerts to resend.
+func (m *Manager) acquired(ctx context.Context) error {
 	m.evalMu.Lock()
-	err = m.load(ctx)
+	err := m.load(ctx)
 	m.evalMu.Unlock()
 	if err != nil {
-		m.log.Error("load alert state", "err", err)
-		if rerr := l.Release(ctx); rerr != nil {
-			m.log.Debug("release evaluator lock", "err", rerr)
-		}
-		return false
+		return fmt.Errorf("load alert state: %w", err)
 	}
-	m.lease = l
-	m.leading.Store(true)
 	m.metrics.leader.Set(1)
 	m.log.Info("took the alert evaluator lock")
-	m.resend()
-	return true
+	m.delivery.resend()
+	return nil
+}
+
+// lost runs when the evaluator lock is found lost: the in-memory state is
+// dropped, to be loaded again when the lock is next taken.
+func (m *Manager) lost(err error) {
+	m.log.Warn("lost the alert evaluator lock", "err", err)
+	m.metrics.leader.Set(0)
+	m.evalMu.Lock()
+	m.mu.Lock()
+	m.instances, m.loaded = make(map[string]*instance), false
+	m.mu.Unlock()
+	m.evalMu.Unlock()
 }
 
 // load replaces the in-memory state with the store's. Alerts of rules no
@@ -385,7 +303,7 @@ func (m *Manager) load(ctx context.Context) error {
 	if err != nil {
 		return fmt.Errorf("read alert state: %w", err)
 	}
-	byName := make(map[string]*rule, len(m.rules))
+	byName := make(map[string]*Compiled, len(m.rules))
 	for _, r := range m.rules {
 		byName[r.Name] = r
 	}
@@ -417,11 +335,7 @@ func (m *Manager) load(ctx context.Context) error {
 	m.instances, m.loaded = loaded, true
 	m.mu.Unlock()
 	for _, in := range loaded {
-		for _, q := range m.queues {
-			if in.owes(q.name) {
-				q.push(queued{alert: in.notice(), tracked: true})
-			}
-		}
+		m.delivery.owed(in)
 	}
 	return nil
 }
@@ -429,15 +343,7 @@ func (m *Manager) load(ctx context.Context) error {
 // settled reports whether an instance can leave memory: inactive, with no
 // notice owed to any notifier.
 func (m *Manager) settled(in *instance) bool {
-	if in.State != StateInactive {
-		return false
-	}
-	for _, q := range m.queues {
-		if in.owes(q.name) {
-			return false
-		}
-	}
-	return true
+	return in.State == StateInactive && !m.delivery.owesAny(in)
 }
 
 // Evaluate evaluates every rule at time at, the scheduled time, and applies
@@ -448,7 +354,7 @@ func (m *Manager) Evaluate(ctx context.Context, at time.Time) error {
 	return m.evaluate(ctx, at, m.rules)
 }
 
-func (m *Manager) evaluate(ctx context.Context, at time.Time, rules []*rule) error {
+func (m *Manager) evaluate(ctx context.Context, at time.Time, rules []*Compiled) error {
 	at = at.UTC()
 	m.evalMu.Lock()
 	defer m.evalMu.Unlock()
@@ -468,11 +374,11 @@ func (m *Manager) evaluate(ctx context.Context, at time.Time, rules []*rule) err
 	if err != nil {
 		return fail(fmt.Errorf("list models: %w", err))
 	}
-	env := &evalEnv{at: at, models: models, ranges: make(map[rangeKey]store.Counts)}
+	env := m.env(at, models)
 	var errs []error
 	for _, r := range rules {
 		m.metrics.evaluations.WithLabelValues(r.Name).Inc()
-		fs, read, err := m.evalRule(ctx, env, r)
+		fs, read, err := r.Evaluate(ctx, env)
 		if err == nil {
 			err = m.apply(ctx, r, at, fs, read)
 		}
@@ -485,16 +391,36 @@ func (m *Manager) evaluate(ctx context.Context, at time.Time, rules []*rule) err
 	return errors.Join(errs...)
 }
 
+// env is the daemon's evaluation environment at time at: the rolling
+// tracker's windows and the store's cells, each fixed range read once.
+func (m *Manager) env(at time.Time, models []store.ModelInfo) Env {
+	src := newCachedCounts(liveSource{view: m.view, store: m.store})
+	return Env{Source: src, Models: models, At: at, Confidence: m.confidence, Since: m.started}
+}
+
+// liveSource reads the current windows from the tracker and fixed ranges
+// from the store.
+type liveSource struct {
+	view  ViewFunc
+	store Store
+}
+
+func (s liveSource) View(model, window string) (windows.View, bool) { return s.view(model, window) }
+
+func (s liveSource) Counts(ctx context.Context, q store.Query) (store.Counts, error) {
+	return s.store.Counts(ctx, q)
+}
+
 // apply steps each instance of r with its finding. Instances of r on a
 // model that was read but that got no finding (a class or pair the rule no
 // longer covers) count as clear; those on a model that could not be read
 // keep their state. A state is changed in memory, and notified, only after
 // the store kept it.
-func (m *Manager) apply(ctx context.Context, r *rule, at time.Time, fs []finding, read map[string]bool) error {
+func (m *Manager) apply(ctx context.Context, r *Compiled, at time.Time, fs []Finding, read map[string]bool) error {
 	seen := make(map[string]bool, len(fs))
 	var errs []error
 	for _, f := range fs {
-		key := instanceKey(r.Name, f.model, f.class, f.predicted)
+		key := instanceKey(r.Name, f.Model, f.Class, f.Predicted)
 		seen[key] = true
 		errs = append(errs, m.applyOne(ctx, r, key, f, at))
 	}
@@ -507,14 +433,14 @@ func (m *Manager) apply(ctx context.Context, r *rule, at time.Time, fs []finding
 	}
 	m.mu.RUnlock()
 	for _, in := range gone {
-		f := finding{model: in.Model, class: in.Class, predicted: in.Predicted,
-			result: Result{Outcome: OutcomeClear, Reason: "no longer covered by the rule"}}
+		f := Finding{Model: in.Model, Class: in.Class, Predicted: in.Predicted,
+			Result: Result{Outcome: OutcomeClear, Reason: "no longer covered by the rule"}}
 		errs = append(errs, m.applyOne(ctx, r, in.Key, f, at))
 	}
 	return errors.Join(errs...)
 }
 
-func (m *Manager) applyOne(ctx context.Context, r *rule, key string, f finding, at time.Time) error {
+func (m *Manager) applyOne(ctx context.Context, r *Compiled, key string, f Finding, at time.Time) error {
 	m.mu.RLock()
 	old := m.instances[key]
 	m.mu.RUnlock()
@@ -524,11 +450,11 @@ func (m *Manager) applyOne(ctx context.Context, r *rule, key string, f finding, 
 	} else {
 		in = &instance{Alert: Alert{Key: key, State: StateInactive}}
 	}
-	in.Rule, in.Kind, in.Model, in.Class, in.Predicted = r.Name, r.Kind, f.model, f.class, f.predicted
+	in.Rule, in.Kind, in.Model, in.Class, in.Predicted = r.Name, r.Kind, f.Model, f.Class, f.Predicted
 	in.Window, in.Severity, in.Metric = r.Window, r.Severity, r.Metric
-	in.Labels = r.labels(f.model, f.class, f.predicted)
-	in.GeneratorURL = generatorURL(m.generatorURL, f.model)
-	changed := in.step(f.result, at, r.FireAfter, r.ResolveAfter)
+	in.Labels = r.labels(f.Model, f.Class, f.Predicted)
+	in.GeneratorURL = generatorURL(m.generatorURL, f.Model)
+	changed := in.step(f.Result, at, r.FireAfter, r.ResolveAfter)
 	if old == nil && in.State == StateInactive {
 		return nil // nothing happened to an alert nobody has seen
 	}
@@ -546,9 +472,7 @@ func (m *Manager) applyOne(ctx context.Context, r *rule, key string, f finding, 
 	if changed {
 		m.log.Info("alert state changed", "key", key, "state", in.State, "at", at)
 		if in.State == StateFiring || in.State == StateResolved {
-			for _, q := range m.queues {
-				q.push(queued{alert: in.notice(), tracked: true})
-			}
+			m.delivery.notify(in.notice())
 		}
 	}
 	return nil
@@ -574,7 +498,7 @@ func (m *Manager) save(ctx context.Context, in *instance, history bool) error {
 func (m *Manager) delivered(ctx context.Context, n string, alerts []Alert) {
 	m.evalMu.Lock()
 	defer m.evalMu.Unlock()
-	if !m.leading.Load() {
+	if !m.leader.Held() {
 		return
 	}
 	for _, a := range alerts {
@@ -606,7 +530,7 @@ func (m *Manager) delivered(ctx context.Context, n string, alerts []Alert) {
 // firing returns the firing alerts, for resending; nothing unless this
 // replica holds the evaluator lock.
 func (m *Manager) firing() []Alert {
-	if !m.leading.Load() {
+	if !m.leader.Held() {
 		return nil
 	}
 	m.mu.RLock()
@@ -619,39 +543,6 @@ func (m *Manager) firing() []Alert {
 	}
 	slices.SortFunc(out, func(a, b Alert) int { return cmp.Compare(a.Key, b.Key) })
 	return out
-}
-
-// resend queues the firing alerts to every notifier that wants them
-// repeated.
-func (m *Manager) resend() {
-	var alerts []Alert
-	for _, q := range m.queues {
-		if q.cfg.ResendInterval <= 0 {
-			continue
-		}
-		if alerts == nil {
-			alerts = m.firing()
-		}
-		for _, a := range alerts {
-			q.push(queued{alert: a})
-		}
-	}
-}
-
-// giveUp records a notification abandoned after its last attempt.
-func (m *Manager) giveUp(n string, alerts []Alert, err error) {
-	u := Undelivered{Notifier: n, At: m.now().UTC(), Error: err.Error()}
-	for _, a := range alerts {
-		u.Alerts = append(u.Alerts, a.Key)
-		u.States = append(u.States, a.State)
-	}
-	m.log.Error("notification undelivered", "notifier", n, "alerts", u.Alerts, "err", err)
-	m.deadMu.Lock()
-	m.dead = append(m.dead, u)
-	if len(m.dead) > maxUndelivered {
-		m.dead = slices.Delete(m.dead, 0, len(m.dead)-maxUndelivered)
-	}
-	m.deadMu.Unlock()
 }
 
 // cronLogger adapts slog to cron's logger. cron's routine messages go to

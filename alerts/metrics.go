@@ -69,11 +69,11 @@ func newMetrics(m *Manager) *metrics {
 		x.failures.WithLabelValues(r.Name)
 		x.missed.WithLabelValues(r.Name)
 	}
-	for _, q := range m.queues {
-		x.sent.WithLabelValues(q.name)
-		x.failed.WithLabelValues(q.name)
-		x.dropped.WithLabelValues(q.name)
-		x.queueLength.WithLabelValues(q.name)
+	for _, n := range m.delivery.names() {
+		x.sent.WithLabelValues(n)
+		x.failed.WithLabelValues(n)
+		x.dropped.WithLabelValues(n)
+		x.queueLength.WithLabelValues(n)
 	}
 	return x
 }
@@ -96,7 +96,7 @@ type stateCollector struct {
 func (c stateCollector) Describe(ch chan<- *prometheus.Desc) { ch <- c.desc }
 
 func (c stateCollector) Collect(ch chan<- prometheus.Metric) {
-	if !c.m.leading.Load() {
+	if !c.m.leader.Held() {
 		return
 	}
 	c.m.mu.RLock()

@@ -115,7 +115,7 @@ func notifyOnce(tb testing.TB, cfg NotifierConfig) *Manager {
 	opts.Notifiers = []NotifierConfig{cfg}
 	m := b.manager(tb, opts)
 	start(tb, m)
-	m.queues[0].push(queued{alert: sampleAlert(tb)})
+	m.delivery.queues[0].push(queued{alert: sampleAlert(tb)})
 	stop(tb, m) // Stop delivers what the queue holds
 	return m
 }
@@ -140,8 +140,8 @@ func TestNotifyRetries(t *testing.T) {
 		if got := testutil.ToFloat64(m.metrics.failed.WithLabelValues("hook")); got != 1 {
 			t.Errorf("failed = %g, want 1", got)
 		}
-		if len(m.dead) != 1 || !strings.Contains(m.dead[0].Error, "400 Bad Request") || m.dead[0].Alerts[0] != floorKey {
-			t.Errorf("undelivered = %+v, want the alert with the 400", m.dead)
+		if len(m.delivery.dead) != 1 || !strings.Contains(m.delivery.dead[0].Error, "400 Bad Request") || m.delivery.dead[0].Alerts[0] != floorKey {
+			t.Errorf("undelivered = %+v, want the alert with the 400", m.delivery.dead)
 		}
 	})
 	t.Run("gives up after max_attempts", func(t *testing.T) {
@@ -150,8 +150,8 @@ func TestNotifyRetries(t *testing.T) {
 		if got := s.calls.Load(); got != 2 {
 			t.Errorf("%d requests, want 2", got)
 		}
-		if len(m.dead) != 1 || !strings.Contains(m.dead[0].Error, "after 2 attempt(s)") {
-			t.Errorf("undelivered = %+v", m.dead)
+		if len(m.delivery.dead) != 1 || !strings.Contains(m.delivery.dead[0].Error, "after 2 attempt(s)") {
+			t.Errorf("undelivered = %+v", m.delivery.dead)
 		}
 	})
 	t.Run("each attempt has its own timeout", func(t *testing.T) {
@@ -170,8 +170,8 @@ func TestNotifyRetries(t *testing.T) {
 		if got := calls.Load(); got != 2 {
 			t.Errorf("%d requests, want 2", got)
 		}
-		if len(m.dead) != 1 || !strings.Contains(m.dead[0].Error, "attempt timed out after 50ms") {
-			t.Errorf("undelivered = %+v, want a timeout", m.dead)
+		if len(m.delivery.dead) != 1 || !strings.Contains(m.delivery.dead[0].Error, "attempt timed out after 50ms") {
+			t.Errorf("undelivered = %+v, want a timeout", m.delivery.dead)
 		}
 	})
 }
@@ -192,10 +192,10 @@ func TestNotifyRedacts(t *testing.T) {
 		t.Run(name, func(t *testing.T) {
 			u := strings.Replace(base, "http://", "http://ops:hunter2@", 1) + "/hooks/s3cretpath?token=qt0ken"
 			m := notifyOnce(t, NotifierConfig{Name: "hook", Type: TypeWebhook, URL: Secret(u), BearerToken: "b3arer", MaxAttempts: 1})
-			if len(m.dead) != 1 {
-				t.Fatalf("undelivered = %+v, want one", m.dead)
+			if len(m.delivery.dead) != 1 {
+				t.Fatalf("undelivered = %+v, want one", m.delivery.dead)
 			}
-			msg := m.dead[0].Error
+			msg := m.delivery.dead[0].Error
 			for _, s := range secrets {
 				if strings.Contains(msg, s) {
 					t.Errorf("error %q reveals %q", msg, s)
@@ -215,7 +215,7 @@ func TestQueueDropsOldest(t *testing.T) {
 	opts := b.options()
 	opts.Notifiers = []NotifierConfig{{Name: "hook", Type: TypeWebhook, URL: "http://127.0.0.1:9/", QueueSize: 2}}
 	m := b.manager(t, opts) // not started: nothing drains the queue
-	q := m.queues[0]
+	q := m.delivery.queues[0]
 	for i := range 5 {
 		a := sampleAlert(t)
 		a.Key = string(rune('a' + i))

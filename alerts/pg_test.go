@@ -47,8 +47,8 @@ func TestTakeOverPostgres(t *testing.T) {
 		return m
 	}
 	m1, m2 := replica(s1), replica(s2)
-	if !m1.leading.Load() || m2.leading.Load() {
-		t.Fatalf("leaders: first %v, second %v; want only the first", m1.leading.Load(), m2.leading.Load())
+	if !m1.leader.Held() || m2.leader.Held() {
+		t.Fatalf("leaders: first %v, second %v; want only the first", m1.leader.Held(), m2.leader.Held())
 	}
 	evaluate(t, m1, t0)
 	if a := h.next(t); a.State != StateFiring {

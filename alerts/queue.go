@@ -28,15 +28,15 @@ type queue struct {
 	name string
 	cfg  NotifierConfig
 	n    Notifier
-	m    *Manager
+	d    *dispatcher
 
 	mu    sync.Mutex
 	items []queued
 	wake  chan struct{}
 }
 
-func newQueue(m *Manager, cfg NotifierConfig, n Notifier) *queue {
-	return &queue{name: cfg.Name, cfg: cfg, n: n, m: m, wake: make(chan struct{}, 1)}
+func newQueue(d *dispatcher, cfg NotifierConfig, n Notifier) *queue {
+	return &queue{name: cfg.Name, cfg: cfg, n: n, d: d, wake: make(chan struct{}, 1)}
 }
 
 // push appends items, dropping the oldest past the queue's size.
@@ -47,11 +47,11 @@ func (q *queue) push(items ...queued) {
 	if drop > 0 {
 		q.items = append(q.items[:0], q.items[drop:]...)
 	}
-	q.m.metrics.queueLength.WithLabelValues(q.name).Set(float64(len(q.items)))
+	q.d.metrics.queueLength.WithLabelValues(q.name).Set(float64(len(q.items)))
 	q.mu.Unlock()
 	if drop > 0 {
-		q.m.metrics.dropped.WithLabelValues(q.name).Add(float64(drop))
-		q.m.log.Warn("notification queue full: dropped the oldest", "notifier", q.name, "dropped", drop)
+		q.d.metrics.dropped.WithLabelValues(q.name).Add(float64(drop))
+		q.d.log.Warn("notification queue full: dropped the oldest", "notifier", q.name, "dropped", drop)
 	}
 	select {
 	case q.wake <- struct{}{}:
@@ -66,7 +66,7 @@ func (q *queue) take() []queued {
 	n := min(len(q.items), maxBatch)
 	batch := append([]queued(nil), q.items[:n]...)
 	q.items = append(q.items[:0], q.items[n:]...)
-	q.m.metrics.queueLength.WithLabelValues(q.name).Set(float64(len(q.items)))
+	q.d.metrics.queueLength.WithLabelValues(q.name).Set(float64(len(q.items)))
 	return batch
 }
 
@@ -98,7 +98,7 @@ func (q *queue) run(ctx context.Context, drain <-chan struct{}) {
 			draining = true
 		case <-q.wake:
 		case <-tick:
-			for _, a := range q.m.firing() {
+			for _, a := range q.d.firing() {
 				q.push(queued{alert: a})
 			}
 		}
@@ -124,24 +124,24 @@ func (q *queue) deliver(ctx context.Context, batch []queued) {
 		retry, err = q.n.Notify(actx, alerts...)
 		cancel()
 		if err == nil {
-			q.m.metrics.sent.WithLabelValues(q.name).Add(float64(len(alerts)))
+			q.d.metrics.sent.WithLabelValues(q.name).Add(float64(len(alerts)))
 			break
 		}
 		if ctx.Err() != nil {
-			q.m.log.Warn("notification abandoned at shutdown", "notifier", q.name, "alerts", len(alerts), "err", err)
+			q.d.log.Warn("notification abandoned at shutdown", "notifier", q.name, "alerts", len(alerts), "err", err)
 			return
 		}
 		if !retry || attempt >= q.cfg.MaxAttempts {
-			q.m.metrics.failed.WithLabelValues(q.name).Add(float64(len(alerts)))
-			q.m.giveUp(q.name, alerts, fmt.Errorf("after %d attempt(s): %w", attempt, err))
+			q.d.metrics.failed.WithLabelValues(q.name).Add(float64(len(alerts)))
+			q.d.giveUp(q.name, alerts, fmt.Errorf("after %d attempt(s): %w", attempt, err))
 			break
 		}
-		q.m.log.Debug("notification failed; retrying", "notifier", q.name, "attempt", attempt, "wait", wait, "err", err)
+		q.d.log.Debug("notification failed; retrying", "notifier", q.name, "attempt", attempt, "wait", wait, "err", err)
 		t := time.NewTimer(wait)
 		select {
 		case <-ctx.Done():
 			t.Stop()
-			q.m.log.Warn("notification abandoned at shutdown", "notifier", q.name, "alerts", len(alerts), "err", errors.Join(err, ctx.Err()))
+			q.d.log.Warn("notification abandoned at shutdown", "notifier", q.name, "alerts", len(alerts), "err", errors.Join(err, ctx.Err()))
 			return
 		case <-t.C:
 		}
@@ -154,6 +154,6 @@ func (q *queue) deliver(ctx context.Context, batch []queued) {
 		}
 	}
 	if len(tracked) > 0 {
-		q.m.delivered(ctx, q.name, tracked)
+		q.d.delivered(ctx, q.name, tracked)
 	}
 }

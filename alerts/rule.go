@@ -39,8 +39,9 @@ const (
 	// KindConfusionRise fires when the share of one actual class predicted
 	// as another rose against the reference period by more than a margin.
 	KindConfusionRise Kind = "confusion_rise"
-	// KindSilence fires when a model sent no prediction for a duration.
-	KindSilence Kind = "silence"
+	// KindNoTraffic fires when no prediction from a model arrived for a
+	// duration.
+	KindNoTraffic Kind = "no_traffic"
 )
 
 // AllModels as a rule's model applies the rule to every known model.
@@ -49,12 +50,22 @@ const AllModels = "all"
 // Defaults a rule gets for the settings it leaves out.
 const (
 	DefaultSchedule = "* * * * *" // every minute, UTC
-	DefaultSeverity = "warning"
+	DefaultSeverity = SeverityWarning
 	// DefaultMinCount is the smallest count a proportion is judged on: a
 	// rule of thumb, from memory, that a proportion estimated from fewer
 	// than about 30 examples is too noisy to alert on.
 	DefaultMinCount = 30
 )
+
+// Severities a rule may carry (its "severity" label).
+const (
+	SeverityCritical = "critical" // page someone now
+	SeverityWarning  = "warning"  // look at it in working hours
+	SeverityInfo     = "info"     // for the record
+)
+
+// severities are the allowed severities, most urgent first.
+var severities = []string{SeverityCritical, SeverityWarning, SeverityInfo}
 
 // Tests a shift rule may use.
 const (
@@ -77,11 +88,13 @@ type Rule struct {
 	Kind Kind
 	// Model is a model name, or AllModels.
 	Model string
-	// Window names the configured window the rule reads (unused by silence).
+	// Window names the configured window the rule reads (unused by
+	// no_traffic).
 	Window string
 	// Schedule is a five-field cron expression (or a descriptor such as
 	// "@every 5m") read in UTC; empty means DefaultSchedule.
 	Schedule string
+	// Severity is critical, warning (the default) or info.
 	Severity string
 	// Labels are added to the alert's labels; Annotations are text/template
 	// texts rendered with the evaluation's figures (see TemplateData).
@@ -123,8 +136,8 @@ type Rule struct {
 	// Pairs are the (actual, predicted) cells a confusion_rise rule
 	// watches; empty means every off-diagonal cell.
 	Pairs []Pair
-	// SilentFor is how long a model may send no prediction (silence).
-	SilentFor time.Duration
+	// QuietFor is how long a model may send no prediction (no_traffic).
+	QuietFor time.Duration
 }
 
 // Reference is a comparison period: another configured window, or a fixed
@@ -148,13 +161,18 @@ type Pair struct {
 	Predicted string `yaml:"predicted"`
 }
 
-// rule is a checked rule with its parsed parts.
-type rule struct {
+// Compiled is a checked rule with its parsed parts and its kind's
+// evaluator, ready to evaluate (CompileRules).
+type Compiled struct {
 	Rule
+	spec        kindSpec
+	eval        Evaluator
 	schedule    cron.Schedule
 	annotations map[string]*template.Template
-	metric      metricSpec
 }
+
+// Next returns the first scheduled time of the rule after t (UTC).
+func (c *Compiled) Next(t time.Time) time.Time { return c.schedule.Next(t.UTC()) }
 
 // fieldError is a problem with one setting of a rule or notifier; key is
 // the YAML key, so that the parser can add its line.
@@ -173,25 +191,6 @@ var (
 // reservedLabels are set by the evaluator on every alert.
 var reservedLabels = []string{"alertname", "model", "class", "predicted", "severity"}
 
-// needsReference reports whether rules of the kind compare with a
-// reference period.
-func (k Kind) needsReference() bool {
-	switch k {
-	case KindDrop, KindPrevalenceShift, KindOutputShift, KindConfusionRise:
-		return true
-	}
-	return false
-}
-
-// valid reports whether k is one of the kinds.
-func (k Kind) valid() bool {
-	switch k {
-	case KindFloor, KindCeiling, KindDrop, KindPrevalenceShift, KindOutputShift, KindConfusionRise, KindSilence:
-		return true
-	}
-	return false
-}
-
 // withDefaults fills in the settings left out.
 func (r Rule) withDefaults() Rule {
 	r.Schedule = cmp.Or(r.Schedule, DefaultSchedule)
@@ -199,46 +198,58 @@ func (r Rule) withDefaults() Rule {
 	r.FireAfter = cmp.Or(r.FireAfter, 1)
 	r.ResolveAfter = cmp.Or(r.ResolveAfter, 1)
 	r.MinCount = cmp.Or(r.MinCount, DefaultMinCount)
-	switch r.Kind {
-	case KindFloor, KindCeiling:
-		r.Interval = cmp.Or(r.Interval, IntervalWilson)
-	case KindDrop:
-		r.Metric = cmp.Or(r.Metric, "recall")
-	case KindPrevalenceShift, KindOutputShift:
-		r.Test = cmp.Or(r.Test, TestChiSquare)
+	if spec, ok := kinds[r.Kind]; ok && spec.defaults != nil {
+		spec.defaults(&r)
 	}
 	return r
 }
 
-// compile checks a rule (defaults filled in) and parses its schedule,
-// metric and templates. It returns every problem found.
-func compile(r Rule) (*rule, []fieldError) {
+// compile checks a rule (defaults filled in), parses its schedule and
+// templates and builds its kind's evaluator. It returns every problem
+// found; the rule is usable only when there is none.
+func compile(r Rule) (*Compiled, []fieldError) {
 	var errs []fieldError
 	bad := func(key, format string, args ...any) {
 		errs = append(errs, fieldError{key, fmt.Sprintf(format, args...)})
 	}
-	c := &rule{Rule: r}
-
+	c := &Compiled{Rule: r}
 	switch {
 	case r.Name == "":
 		bad("name", "required")
 	case !nameRE.MatchString(r.Name):
 		bad("name", "%q: use letters, digits and _ . : - (starting with a letter or digit)", r.Name)
 	}
-	if !r.Kind.valid() {
-		bad("kind", "%q is not one of floor, ceiling, drop, prevalence_shift, output_shift, confusion_rise, silence", r.Kind)
+	spec, ok := kinds[r.Kind]
+	if !ok {
+		bad("kind", "%q is not one of %s", r.Kind, kindNames())
 		return c, errs
 	}
+	c.spec = spec
 	if r.Model == "" {
 		bad("model", "required (a model name, or %q)", AllModels)
 	}
-	if r.Kind != KindSilence && r.Window == "" {
+	if spec.window && r.Window == "" {
 		bad("window", "required")
 	}
+	c.checkCommon(bad)
+	if spec.reference {
+		checkReference(&c.Rule, bad)
+	}
+	c.eval = spec.build(&c.Rule, bad)
+	return c, errs
+}
+
+// checkCommon checks the settings every kind has and parses the schedule
+// and annotation templates.
+func (c *Compiled) checkCommon(bad badFunc) {
+	r := &c.Rule
 	if s, err := cron.ParseStandard(r.Schedule); err != nil {
 		bad("schedule", "%q: %v", r.Schedule, err)
 	} else {
 		c.schedule = s
+	}
+	if !slices.Contains(severities, r.Severity) {
+		bad("severity", "%q is not one of %s", r.Severity, strings.Join(severities, ", "))
 	}
 	for _, k := range slices.Sorted(maps.Keys(r.Labels)) {
 		switch {
@@ -269,93 +280,29 @@ func compile(r Rule) (*rule, []fieldError) {
 	if r.MinCount < 1 {
 		bad("min_count", "must be at least 1")
 	}
-
-	switch r.Kind {
-	case KindFloor, KindCeiling:
-		spec, ok := metricSpecs[r.Metric]
-		switch {
-		case r.Metric == "":
-			bad("metric", "required")
-		case !ok:
-			bad("metric", "%q is not one of %s", r.Metric, strings.Join(slices.Sorted(maps.Keys(metricSpecs)), ", "))
-		default:
-			c.metric = spec
-			if !spec.perClass && len(r.Classes) > 0 {
-				bad("classes", "metric %s is not per class", r.Metric)
-			}
-			switch r.Interval {
-			case IntervalWilson, IntervalJeffreys:
-				if spec.counts == nil {
-					bad("interval", "metric %s is not a proportion and has no %s interval; set interval: none to compare its point value", r.Metric, r.Interval)
-				}
-			case IntervalNone:
-			default:
-				bad("interval", "%q is not one of wilson, jeffreys, none", r.Interval)
-			}
-		}
-		if ok && !(r.Threshold >= spec.min && r.Threshold <= 1) {
-			bad("threshold", "%g must lie between %g and 1", r.Threshold, spec.min)
-		}
-	case KindDrop:
-		switch r.Metric {
-		case "recall", "precision", "specificity":
-			c.metric = metricSpecs[r.Metric]
-		default:
-			bad("metric", "%q: a drop rule compares recall, precision or specificity", r.Metric)
-		}
-	case KindConfusionRise:
-		for _, p := range r.Pairs {
-			switch {
-			case p.Actual == "" || p.Predicted == "":
-				bad("pairs", "each pair needs actual and predicted")
-			case p.Actual == p.Predicted:
-				bad("pairs", "%s→%s is on the diagonal; confusion_rise watches errors", p.Actual, p.Predicted)
-			}
-		}
-	case KindPrevalenceShift, KindOutputShift:
-		switch r.Test {
-		case TestChiSquare, TestG:
-		case TestNone:
-			if r.PSIThreshold == 0 {
-				bad("psi_threshold", "required when test is none")
-			}
-		default:
-			bad("test", "%q is not one of chi_square, g_test, none", r.Test)
-		}
-		if r.PSIThreshold < 0 {
-			bad("psi_threshold", "must not be negative")
-		}
-	case KindSilence:
-		if r.SilentFor <= 0 {
-			bad("silent_for", "required and positive")
-		}
-	}
-	if r.Kind == KindDrop || r.Kind == KindConfusionRise {
-		if !(r.Margin >= 0 && r.Margin < 1) {
-			bad("margin", "%g must lie in [0, 1)", r.Margin)
-		}
-	}
-	if r.Kind.needsReference() {
-		ref := r.Reference
-		switch {
-		case ref.Window != "" && (!ref.From.IsZero() || !ref.To.IsZero()):
-			bad("reference", "give either a window or from/to, not both")
-		case ref.Window != "":
-			if ref.Window == r.Window {
-				bad("reference", "window %s is the rule's own window", ref.Window)
-			}
-		case ref.From.IsZero() || ref.To.IsZero():
-			bad("reference", "required: a window, or from and to")
-		case !ref.From.Before(ref.To):
-			bad("reference", "from %s is not before to %s", ref.From.Format(time.RFC3339), ref.To.Format(time.RFC3339))
-		}
-	}
-	return c, errs
 }
 
-// checkRules compiles every rule and checks that names are unique.
-func checkRules(rules []Rule) ([]*rule, error) {
-	out := make([]*rule, 0, len(rules))
+// checkReference checks the reference period of kinds that compare.
+func checkReference(r *Rule, bad badFunc) {
+	ref := r.Reference
+	switch {
+	case ref.Window != "" && (!ref.From.IsZero() || !ref.To.IsZero()):
+		bad("reference", "give either a window or from/to, not both")
+	case ref.Window != "":
+		if ref.Window == r.Window {
+			bad("reference", "window %s is the rule's own window", ref.Window)
+		}
+	case ref.From.IsZero() || ref.To.IsZero():
+		bad("reference", "required: a window, or from and to")
+	case !ref.From.Before(ref.To):
+		bad("reference", "from %s is not before to %s", ref.From.Format(time.RFC3339), ref.To.Format(time.RFC3339))
+	}
+}
+
+// CompileRules checks every rule (defaults filled in) and that names are
+// unique, and returns them ready to evaluate.
+func CompileRules(rules []Rule) ([]*Compiled, error) {
+	out := make([]*Compiled, 0, len(rules))
 	seen := make(map[string]bool, len(rules))
 	var errs []error
 	for i, r := range rules {
@@ -369,7 +316,10 @@ func checkRules(rules []Rule) ([]*rule, error) {
 		seen[r.Name] = true
 		out = append(out, c)
 	}
-	return out, errors.Join(errs...)
+	if err := errors.Join(errs...); err != nil {
+		return nil, err
+	}
+	return out, nil
 }
 
 // ruleLabel names rule i for messages.

@@ -107,15 +107,15 @@ func findings(tb testing.TB, m *Manager) map[string]Result {
 	if err != nil {
 		tb.Fatalf("list models: %v", err)
 	}
-	env := &evalEnv{at: t0, models: models, ranges: make(map[rangeKey]store.Counts)}
+	env := m.env(t0, models)
 	out := make(map[string]Result)
 	for _, r := range m.rules {
-		fs, _, err := m.evalRule(ctx, env, r)
+		fs, _, err := r.Evaluate(ctx, env)
 		if err != nil {
 			tb.Fatalf("evaluate rule %s: %v", r.Name, err)
 		}
 		for _, f := range fs {
-			out[instanceKey(r.Name, f.model, f.class, f.predicted)] = f.result
+			out[instanceKey(r.Name, f.Model, f.Class, f.Predicted)] = f.Result
 		}
 	}
 	return out
@@ -535,7 +535,7 @@ func TestSilence(t *testing.T) {
 		t.Fatal(err)
 	}
 	b.now.set(t0.Add(-20 * time.Minute)) // the manager starts 20 minutes before t0
-	m := b.manager(t, b.options(Rule{Name: "quiet", Kind: KindSilence, Model: AllModels, SilentFor: 30 * time.Minute}))
+	m := b.manager(t, b.options(Rule{Name: "quiet", Kind: KindNoTraffic, Model: AllModels, QuietFor: 30 * time.Minute}))
 	for _, c := range []struct {
 		at          time.Time
 		fraud, tria Outcome
@@ -548,14 +548,13 @@ func TestSilence(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		env := &evalEnv{at: c.at, models: models, ranges: map[rangeKey]store.Counts{}}
-		fs, _, err := m.evalRule(ctx, env, m.rules[0])
+		fs, _, err := m.rules[0].Evaluate(ctx, m.env(c.at, models))
 		if err != nil {
 			t.Fatal(err)
 		}
 		got := map[string]Outcome{}
 		for _, f := range fs {
-			got[f.model] = f.result.Outcome
+			got[f.Model] = f.Result.Outcome
 		}
 		if got["card-fraud"] != c.fraud || got["claim-triage"] != c.tria {
 			t.Errorf("at %s: card-fraud %s, claim-triage %s; want %s, %s", c.at.Format(time.RFC3339), got["card-fraud"], got["claim-triage"], c.fraud, c.tria)

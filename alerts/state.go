@@ -30,6 +30,29 @@ type notice struct {
 }
 
 // step applies one evaluation's result at time at and reports whether the
+// state changed (see Lifecycle.Step).
+func (in *instance) step(res Result, at time.Time, fireAfter, resolveAfter int) bool {
+	l := Lifecycle{State: in.State, Met: in.Met, Clear: in.Clear, ActiveAt: in.ActiveAt, StartsAt: in.StartsAt, EndsAt: in.EndsAt}
+	changed := l.Step(res.Outcome, at, fireAfter, resolveAfter)
+	in.State, in.Met, in.Clear, in.ActiveAt, in.StartsAt, in.EndsAt = l.State, l.Met, l.Clear, l.ActiveAt, l.StartsAt, l.EndsAt
+	in.Result, in.EvaluatedAt = res, at
+	return changed
+}
+
+// Lifecycle is one alert instance's place in the state machine, with the
+// counters of its hysteresis; the zero value is inactive. The daemon keeps
+// one per instance in the store; a backtest steps its own.
+type Lifecycle struct {
+	State State
+	// Met and Clear count consecutive evaluations with the condition met
+	// (clear); an unknown outcome changes neither.
+	Met, Clear int
+	// ActiveAt is the first evaluation of the current episode with the
+	// condition met; StartsAt when it fired; EndsAt when it resolved.
+	ActiveAt, StartsAt, EndsAt time.Time
+}
+
+// Step applies one evaluation's outcome at time at and reports whether the
 // state changed.
 //
 //	inactive ──met──► pending ──met × fire_after──► firing
@@ -41,34 +64,35 @@ type notice struct {
 // With fire_after 1 an instance goes from inactive (or resolved) straight
 // to firing. An unknown outcome (too little data) holds the state and both
 // counters: missing data neither fires nor resolves an alert.
-func (in *instance) step(res Result, at time.Time, fireAfter, resolveAfter int) bool {
-	before := in.State
-	in.Result = res
-	in.EvaluatedAt = at
-	switch res.Outcome {
+func (l *Lifecycle) Step(o Outcome, at time.Time, fireAfter, resolveAfter int) bool {
+	if l.State == "" {
+		l.State = StateInactive
+	}
+	before := l.State
+	switch o {
 	case OutcomeMet:
-		in.Clear = 0
-		in.Met++
-		switch in.State {
+		l.Clear = 0
+		l.Met++
+		switch l.State {
 		case StateInactive, StateResolved:
-			in.State, in.ActiveAt, in.Met = StatePending, at, 1
+			l.State, l.ActiveAt, l.Met = StatePending, at, 1
 		}
-		if in.State == StatePending && in.Met >= fireAfter {
-			in.State, in.StartsAt, in.EndsAt = StateFiring, at, time.Time{}
+		if l.State == StatePending && l.Met >= fireAfter {
+			l.State, l.StartsAt, l.EndsAt = StateFiring, at, time.Time{}
 		}
 	case OutcomeClear:
-		in.Met = 0
-		switch in.State {
+		l.Met = 0
+		switch l.State {
 		case StatePending, StateResolved:
-			in.State, in.Clear = StateInactive, 0
+			l.State, l.Clear = StateInactive, 0
 		case StateFiring:
-			in.Clear++
-			if in.Clear >= resolveAfter {
-				in.State, in.EndsAt, in.Clear = StateResolved, at, 0
+			l.Clear++
+			if l.Clear >= resolveAfter {
+				l.State, l.EndsAt, l.Clear = StateResolved, at, 0
 			}
 		}
 	}
-	return in.State != before
+	return l.State != before
 }
 
 // wanted returns the notice notifiers should have for the instance's

@@ -32,7 +32,7 @@ const alertmanagerPath = "/usr/bin/prometheus-alertmanager"
 const (
 	e2eRule     = "fraud-recall-floor"
 	e2eModel    = "card-screen"
-	e2eSeverity = "page"
+	e2eSeverity = "critical"
 	e2eTeam     = "card-risk"
 )
 
