@@ -5,6 +5,7 @@
 package main
 
 import (
+	"bytes"
 	"context"
 	"errors"
 	"flag"
@@ -12,6 +13,7 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"strings"
 	"syscall"
 )
 
@@ -44,49 +46,72 @@ func exitCode(err error, stderr io.Writer) int {
 	}
 }
 
-const topUsage = `classwatch watches classifiers in production.
+// command is one subcommand: its name, a one-line summary for the help
+// text and its entry point.
+type command struct {
+	name, summary string
+	run           func(ctx context.Context, args []string, stdout, stderr io.Writer) error
+}
 
-Usage:
-  classwatch serve   [--config F] [--listen ADDR] [--database URL]   run the daemon
-  classwatch demo                                                   run a simulated deployment
-  classwatch migrate [--config F] [--database URL]                  apply schema migrations
-  classwatch audit   --model M --from T --to T [--as-of T] [--format table|json|csv]
-  classwatch verify  [--config F] [--database URL]                  recompute cells from raw rows
-  classwatch ingest  predictions|labels FILE.ndjson                 bulk backfill into the store
-  classwatch rules   check F                                        validate alert rules
-
-Run "classwatch COMMAND --help" for a command's flags.
-`
+// commands lists the subcommands in the order the help shows them.
+func commands() []command {
+	return []command{
+		{"serve", "run the daemon: ingest, windows, /metrics, alerts, pages", runServe},
+		{"demo", "run a simulated deployment on the embedded store and print its URL", runDemo},
+		{"migrate", "apply pending schema migrations to the store", runMigrate},
+		{"audit", "print one model's confusion matrix and metrics for a past period", runAudit},
+		{"verify", "recompute every cell from the raw rows and report any difference", runVerify},
+		{"ingest", "bulk backfill NDJSON predictions or labels into the store", runIngest},
+		{"rules", "check a config file's alert rules (and the whole file) without starting", runRules},
+	}
+}
 
 // run dispatches to a subcommand. It is main without the process: tests
 // call it with their own context, arguments and writers.
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	if len(args) == 0 {
-		fmt.Fprint(stderr, topUsage)
+		printSummary(stderr)
 		return usagef("no command given")
 	}
-	cmd, rest := args[0], args[1:]
-	switch cmd {
-	case "serve":
-		return runServe(ctx, rest, stdout, stderr)
-	case "demo":
-		return runDemo(ctx, rest, stdout, stderr)
-	case "migrate":
-		return runMigrate(ctx, rest, stdout, stderr)
-	case "audit":
-		return runAudit(ctx, rest, stdout, stderr)
-	case "verify":
-		return runVerify(ctx, rest, stdout, stderr)
-	case "ingest":
-		return runIngest(ctx, rest, stdout, stderr)
-	case "rules":
-		return runRules(ctx, rest, stdout, stderr)
+	name, rest := args[0], args[1:]
+	for _, c := range commands() {
+		if c.name == name {
+			return c.run(ctx, rest, stdout, stderr)
+		}
+	}
+	switch name {
 	case "help", "-h", "--help", "-help":
-		fmt.Fprint(stdout, topUsage)
+		printHelp(ctx, stdout)
 		return nil
-	default:
-		fmt.Fprint(stderr, topUsage)
-		return usagef("unknown command %q", cmd)
+	}
+	printSummary(stderr)
+	return usagef("unknown command %q", name)
+}
+
+// printSummary prints the commands, one line each.
+func printSummary(w io.Writer) {
+	fmt.Fprint(w, "classwatch watches classifiers in production.\n\nUsage: classwatch COMMAND [flags] [arguments]\n\nCommands:\n")
+	for _, c := range commands() {
+		fmt.Fprintf(w, "  %-8s %s\n", c.name, c.summary)
+	}
+	fmt.Fprint(w, "\nRun \"classwatch help\" for every command's flags.\n")
+}
+
+// printHelp prints the summary, then each command's own usage text (its
+// synopsis and flags), so the two can never disagree.
+func printHelp(ctx context.Context, w io.Writer) {
+	printSummary(w)
+	for _, c := range commands() {
+		var usage bytes.Buffer
+		_ = c.run(ctx, []string{"-h"}, io.Discard, &usage)
+		fmt.Fprintf(w, "\n%s: %s\n", c.name, c.summary)
+		for _, line := range strings.Split(strings.TrimRight(usage.String(), "\n"), "\n") {
+			if line == "" {
+				fmt.Fprintln(w)
+				continue
+			}
+			fmt.Fprintf(w, "    %s\n", line)
+		}
 	}
 }
 
@@ -96,8 +121,13 @@ func newFlagSet(name, synopsis string, stderr io.Writer) *flag.FlagSet {
 	fs := flag.NewFlagSet(name, flag.ContinueOnError)
 	fs.SetOutput(stderr)
 	fs.Usage = func() {
-		fmt.Fprintf(stderr, "Usage: classwatch %s\n\nFlags:\n", synopsis)
-		fs.PrintDefaults()
+		fmt.Fprintf(stderr, "Usage: classwatch %s\n", synopsis)
+		n := 0
+		fs.VisitAll(func(*flag.Flag) { n++ })
+		if n > 0 {
+			fmt.Fprint(stderr, "\nFlags:\n")
+			fs.PrintDefaults()
+		}
 	}
 	return fs
 }

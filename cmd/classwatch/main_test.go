@@ -53,3 +53,27 @@ func TestExitCodes(t *testing.T) {
 		})
 	}
 }
+
+// TestHelpListsEveryCommand checks that "classwatch --help" shows every
+// command with its flags, and that a command without flags shows no empty
+// "Flags:" heading.
+func TestHelpListsEveryCommand(t *testing.T) {
+	code, out, _ := runCLI(t, "--help")
+	if code != 0 {
+		t.Fatalf("--help exit status %d", code)
+	}
+	for _, c := range commands() {
+		if !strings.Contains(out, "\n"+c.name+": ") {
+			t.Errorf("help lacks command %s:\n%s", c.name, out)
+		}
+	}
+	for _, flag := range []string{"-log-json", "-listen", "-seed", "-speed", "-as-of", "-segment", "-format", "-quiet", "-database", "-config"} {
+		if !strings.Contains(out, "      "+flag) {
+			t.Errorf("help lacks flag %s", flag)
+		}
+	}
+	code, out, errOut := runCLI(t, "rules", "check", "--help")
+	if code != 0 || !strings.Contains(errOut, "rules check FILE") || strings.Contains(out+errOut, "Flags:") {
+		t.Errorf("rules check --help = %d\nstdout: %s\nstderr: %s", code, out, errOut)
+	}
+}

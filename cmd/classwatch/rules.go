@@ -10,16 +10,20 @@ import (
 // alerts and notifiers sections included, without starting anything.
 func runRules(_ context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("rules", "rules check FILE", stderr)
-	if err := parseFlags(fs, args, 2); err != nil {
+	if err := parseFlags(fs, args, -1); err != nil {
 		return err
 	}
 	if fs.Arg(0) != "check" {
 		fs.Usage()
 		return usagef("rules: unknown subcommand %q (want check)", fs.Arg(0))
 	}
+	check := newFlagSet("rules check", "rules check FILE", stderr)
+	if err := parseFlags(check, fs.Args()[1:], 1); err != nil {
+		return err
+	}
 	// The loader serve uses, so a file that passes here starts; secrets
 	// stay in the environment of the daemon.
-	file := fs.Arg(1)
+	file := check.Arg(0)
 	if _, err := loadConfig(configSource{path: file}); err != nil {
 		return err
 	}
