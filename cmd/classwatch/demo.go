@@ -64,7 +64,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		return err
 	}
 	base := "http://" + d.addr()
-	fmt.Fprintf(stdout, `classwatch demo: a fictional bank's two models, simulated at %.0f× real time.
+	fmt.Fprintf(stdout, `classwatch demo: Plumtwig Mutual (a fictional bank), two models simulated at %.0f× real time.
 
   overview      %[2]s/
   metrics       %[2]s/metrics

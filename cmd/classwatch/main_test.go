@@ -3,8 +3,10 @@ package main
 import (
 	"bytes"
 	"context"
+	"io"
 	"os"
 	"path/filepath"
+	"regexp"
 	"strings"
 	"testing"
 )
@@ -75,5 +77,46 @@ func TestHelpListsEveryCommand(t *testing.T) {
 	code, out, errOut := runCLI(t, "rules", "check", "--help")
 	if code != 0 || !strings.Contains(errOut, "rules check FILE") || strings.Contains(out+errOut, "Flags:") {
 		t.Errorf("rules check --help = %d\nstdout: %s\nstderr: %s", code, out, errOut)
+	}
+}
+
+// TestREADMEMatchesCLI checks that README.md's "CLI" section names every
+// flag of every command, and that the demo's address in README.md is the
+// demo's default.
+func TestREADMEMatchesCLI(t *testing.T) {
+	readme, err := os.ReadFile(filepath.Join("..", "..", "README.md"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	text := string(readme)
+	start := strings.Index(text, "\n## CLI\n")
+	if start < 0 {
+		t.Fatal(`README.md has no "## CLI" section`)
+	}
+	cli := text[start+1:]
+	if end := strings.Index(cli[1:], "\n## "); end >= 0 {
+		cli = cli[:end+1]
+	}
+	for _, c := range commands() {
+		var usage bytes.Buffer
+		_ = c.run(context.Background(), []string{"-h"}, io.Discard, &usage)
+		for _, line := range strings.Split(usage.String(), "\n") {
+			if !strings.HasPrefix(line, "  -") {
+				continue
+			}
+			flag := "--" + strings.Fields(line)[0][1:]
+			if !strings.Contains(cli, "classwatch "+c.name) || !strings.Contains(cli, flag) {
+				t.Errorf("README.md CLI section lacks %s %s", c.name, flag)
+			}
+		}
+		if c.name == "demo" {
+			m := regexp.MustCompile(`-listen address\n.*\(default "([^"]+)"\)`).FindStringSubmatch(usage.String())
+			if m == nil {
+				t.Fatalf("demo usage has no --listen default:\n%s", usage.String())
+			}
+			if want := "`classwatch demo` starts the daemon on `" + m[1] + "`"; !strings.Contains(text, want) {
+				t.Errorf("README.md does not say %s", want)
+			}
+		}
 	}
 }
