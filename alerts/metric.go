@@ -3,7 +3,8 @@ package alerts
 import "github.com/classwatch/classwatch/windows"
 
 // metricSpec says how a floor, ceiling or drop rule reads one window metric.
-// Names are the metric names of the JSON API (README.md "HTTP API").
+// Every spec comes from windows.MetricDefs, so the names are the metric
+// names of the JSON API (README.md "HTTP API").
 type metricSpec struct {
 	perClass bool
 	// min is the least value the metric takes: 0, or −1 for mcc and kappa.
@@ -17,48 +18,27 @@ type metricSpec struct {
 	value func(ms windows.Metrics, m *windows.Matrix, k int) (v *float64, n int64)
 }
 
-// metricSpecs are the metrics a floor or ceiling rule may watch.
-var metricSpecs = map[string]metricSpec{
-	"recall": {perClass: true, counts: func(m *windows.Matrix, _ []int64, k int) (int64, int64) {
-		return m.At(k, k), m.Row(k)
-	}},
-	"precision": {perClass: true, counts: func(m *windows.Matrix, _ []int64, k int) (int64, int64) {
-		return m.At(k, k), m.Col(k)
-	}},
-	"specificity": {perClass: true, counts: func(m *windows.Matrix, _ []int64, k int) (int64, int64) {
-		negatives := m.Total() - m.Row(k)
-		fp := m.Col(k) - m.At(k, k)
-		return negatives - fp, negatives
-	}},
-	"prevalence": {perClass: true, counts: func(m *windows.Matrix, _ []int64, k int) (int64, int64) {
-		return m.Row(k), m.Total()
-	}},
-	"predicted_share": {perClass: true, counts: func(_ *windows.Matrix, pred []int64, k int) (int64, int64) {
-		return pred[k], sum(pred)
-	}},
-	"accuracy": {counts: func(m *windows.Matrix, _ []int64, _ int) (int64, int64) {
-		return m.Trace(), m.Total()
-	}},
-	"label_coverage": {counts: func(m *windows.Matrix, pred []int64, _ int) (int64, int64) {
-		return m.Total(), sum(pred)
-	}},
-	"f1": {perClass: true, value: func(ms windows.Metrics, m *windows.Matrix, k int) (*float64, int64) {
-		// F1 is defined by TP, FP and FN; its count is the examples that
-		// are either actual or predicted k.
-		return ms.PerClass[k].F1, m.Row(k) + m.Col(k) - m.At(k, k)
-	}},
-	"balanced_accuracy": {value: func(ms windows.Metrics, m *windows.Matrix, _ int) (*float64, int64) {
-		return ms.BalancedAccuracy, m.Total()
-	}},
-	"macro_f1": {value: func(ms windows.Metrics, m *windows.Matrix, _ int) (*float64, int64) {
-		return ms.MacroF1, m.Total()
-	}},
-	"mcc": {min: -1, value: func(ms windows.Metrics, m *windows.Matrix, _ int) (*float64, int64) {
-		return ms.MCC, m.Total()
-	}},
-	"kappa": {min: -1, value: func(ms windows.Metrics, m *windows.Matrix, _ int) (*float64, int64) {
-		return ms.Kappa, m.Total()
-	}},
+// metricSpecs are the metrics a floor or ceiling rule may watch: every
+// metric of windows.MetricDefs that a proportion's counts or a count it is
+// judged on backs.
+var metricSpecs = specsFromTable(windows.MetricDefs())
+
+func specsFromTable(defs []windows.MetricDef) map[string]metricSpec {
+	specs := make(map[string]metricSpec, len(defs))
+	for _, d := range defs {
+		spec := metricSpec{perClass: d.Scope == windows.ScopeClass, min: d.Min, counts: d.Counts}
+		switch {
+		case d.Counts != nil:
+		case d.Judged != nil:
+			spec.value = func(ms windows.Metrics, m *windows.Matrix, k int) (*float64, int64) {
+				return d.Value(&ms, k), d.Judged(m, k)
+			}
+		default:
+			continue
+		}
+		specs[d.Name] = spec
+	}
+	return specs
 }
 
 func sum(v []int64) int64 {

@@ -31,20 +31,11 @@ type promGatherer struct {
 	windowEnd     family
 	predictions   family
 	labeled       family
-	coverage      family
-	accuracy      family
-	balanced      family
-	macroF1       family
 	confusion     family
 	classPredicts family
-	recall        family
-	recallLower   family
-	recallUpper   family
-	precision     family
-	specificity   family
-	f1            family
-	prevalence    family
-	predicted     family
+	// perWindow and perClass are the exported metrics of MetricDefs, with
+	// their interval bounds.
+	perWindow, perClass []metricFamily
 }
 
 // family names one gauge family and its help text.
@@ -52,12 +43,18 @@ type family struct {
 	name, help string
 }
 
+// metricFamily is a family whose value is read from computed figures.
+type metricFamily struct {
+	family
+	value func(ms *Metrics, k int) (float64, bool)
+}
+
 // NewGatherer returns a Prometheus gatherer of t's windows, with confidence
 // intervals at the given level (0.95 for 95%). Its families are sorted and
 // checked as a prometheus.Registry would return them; serve it together
 // with the caller's registry through MergeGatherers.
 func NewGatherer(t *Tracker, confidence float64) prometheus.Gatherer {
-	return &promGatherer{
+	g := &promGatherer{
 		t:          t,
 		confidence: confidence,
 
@@ -66,21 +63,38 @@ func NewGatherer(t *Tracker, confidence float64) prometheus.Gatherer {
 		windowEnd:     family{"classwatch_window_end_timestamp_seconds", "End of the window's last bucket (exclusive), in Unix seconds."},
 		predictions:   family{"classwatch_window_predictions", "Predictions made in the window, labeled or not."},
 		labeled:       family{"classwatch_window_labeled", "Predictions made in the window that have a label."},
-		coverage:      family{"classwatch_label_coverage_ratio", "Labeled predictions over all predictions in the window."},
-		accuracy:      family{"classwatch_accuracy_ratio", "Correct predictions over labeled predictions in the window."},
-		balanced:      family{"classwatch_balanced_accuracy_ratio", "Mean recall over the classes with at least one labeled example in the window."},
-		macroF1:       family{"classwatch_macro_f1_ratio", "Mean F1 over the classes present among the window's actual or predicted classes."},
 		confusion:     family{"classwatch_confusion", "Labeled predictions in the window by actual and predicted class."},
 		classPredicts: family{"classwatch_window_class_predictions", "Predictions of the class made in the window, labeled or not."},
-		recall:        family{"classwatch_recall_ratio", "Recall of the class in the window: true positives over labeled examples of the class."},
-		recallLower:   family{"classwatch_recall_lower_ratio", "Lower bound of the Wilson score interval of the class's recall."},
-		recallUpper:   family{"classwatch_recall_upper_ratio", "Upper bound of the Wilson score interval of the class's recall."},
-		precision:     family{"classwatch_precision_ratio", "Precision of the class in the window: true positives over labeled predictions of the class."},
-		specificity:   family{"classwatch_specificity_ratio", "Specificity of the class in the window: true negatives over labeled examples of other classes."},
-		f1:            family{"classwatch_f1_ratio", "F1 score of the class in the window."},
-		prevalence:    family{"classwatch_prevalence_ratio", "Labeled examples of the class over all labeled predictions in the window."},
-		predicted:     family{"classwatch_predicted_ratio", "Predictions of the class over all predictions in the window, labeled or not."},
 	}
+	for _, d := range MetricDefs() {
+		if d.Prom == "" {
+			continue
+		}
+		fams := []metricFamily{{family{d.Prom, d.Help}, func(ms *Metrics, k int) (float64, bool) { return deref(d.Value(ms, k)) }}}
+		if d.PromBounds != "" {
+			bound := func(hi bool) func(ms *Metrics, k int) (float64, bool) {
+				return func(ms *Metrics, k int) (float64, bool) {
+					iv := d.Interval(ms, k)
+					switch {
+					case iv == nil:
+						return 0, false
+					case hi:
+						return iv.Hi, true
+					}
+					return iv.Lo, true
+				}
+			}
+			fams = append(fams,
+				metricFamily{family{d.PromLower(), "Lower bound of the " + d.PromBounds + "."}, bound(false)},
+				metricFamily{family{d.PromUpper(), "Upper bound of the " + d.PromBounds + "."}, bound(true)})
+		}
+		if d.Scope == ScopeClass {
+			g.perClass = append(g.perClass, fams...)
+		} else {
+			g.perWindow = append(g.perWindow, fams...)
+		}
+	}
+	return g
 }
 
 // Gather builds every series from the tracker's current views. Undefined
@@ -115,43 +129,27 @@ func (g *promGatherer) Gather() ([]*dto.MetricFamily, error) {
 	})
 	perWindow(g.predictions, func(vf *viewFigures) (float64, bool) { return float64(vf.m.Predictions), true })
 	perWindow(g.labeled, func(vf *viewFigures) (float64, bool) { return float64(vf.m.Labeled), true })
-	perWindow(g.coverage, func(vf *viewFigures) (float64, bool) { return deref(vf.m.LabelCoverage) })
-	perWindow(g.accuracy, func(vf *viewFigures) (float64, bool) { return deref(vf.m.Accuracy) })
-	perWindow(g.balanced, func(vf *viewFigures) (float64, bool) { return deref(vf.m.BalancedAccuracy) })
-	perWindow(g.macroF1, func(vf *viewFigures) (float64, bool) { return deref(vf.m.MacroF1) })
+	for _, f := range g.perWindow {
+		perWindow(f.family, func(vf *viewFigures) (float64, bool) { return f.value(&vf.m, 0) })
+	}
 
 	// {class, model, window} families.
 	refs := classRefs(models)
-	perClass := func(f family, value func(cm *ClassMetrics) (float64, bool)) {
+	perClass := func(f family, value func(ms *Metrics, k int) (float64, bool)) {
 		b.begin(f)
 		for _, r := range refs {
 			mf := &models[r.model]
 			for i := range mf.views {
-				if v, ok := value(&mf.views[i].m.PerClass[r.index]); ok {
+				if v, ok := value(&mf.views[i].m, r.index); ok {
 					b.add(v, mf.class[r.index], mf.pair, mf.views[i].pair)
 				}
 			}
 		}
 	}
-	perClass(g.classPredicts, func(cm *ClassMetrics) (float64, bool) { return float64(cm.PredictedCount), true })
-	perClass(g.recall, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Recall) })
-	perClass(g.recallLower, func(cm *ClassMetrics) (float64, bool) {
-		if cm.RecallInterval == nil {
-			return 0, false
-		}
-		return cm.RecallInterval.Lo, true
-	})
-	perClass(g.recallUpper, func(cm *ClassMetrics) (float64, bool) {
-		if cm.RecallInterval == nil {
-			return 0, false
-		}
-		return cm.RecallInterval.Hi, true
-	})
-	perClass(g.precision, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Precision) })
-	perClass(g.specificity, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Specificity) })
-	perClass(g.f1, func(cm *ClassMetrics) (float64, bool) { return deref(cm.F1) })
-	perClass(g.prevalence, func(cm *ClassMetrics) (float64, bool) { return deref(cm.Prevalence) })
-	perClass(g.predicted, func(cm *ClassMetrics) (float64, bool) { return deref(cm.PredictedShare) })
+	perClass(g.classPredicts, func(ms *Metrics, k int) (float64, bool) { return float64(ms.PerClass[k].PredictedCount), true })
+	for _, f := range g.perClass {
+		perClass(f.family, f.value)
+	}
 
 	// {actual, model, predicted, window}: every cell, zeros included.
 	b.begin(g.confusion)
@@ -207,8 +205,8 @@ func (g *promGatherer) snapshot() (models []modelFigures, samples int) {
 			mf.byName[k] = k
 		}
 		slices.SortFunc(mf.byName, func(a, b int) int { return strings.Compare(classes[a], classes[b]) })
-		// Per window: 8 window series, n² cells and 9 series per class.
-		samples += 1 + len(views)*(8+n*n+9*n)
+		// Per window: the window series, n² cells and the class series.
+		samples += 1 + len(views)*(4+len(g.perWindow)+n*n+(1+len(g.perClass))*n)
 		models = append(models, mf)
 	}
 	return models, samples

@@ -243,10 +243,10 @@ func TestMatrixContract(t *testing.T) {
 		want      float64
 		wantExact bool
 	}{
-		{"fraud recall", f.Recall, 0.5, true},
-		{"fraud precision", f.Precision, 0.5, true},
-		{"fraud predicted share", f.PredictedShare, 0.4, true},
-		{"label coverage", rep.Metrics.LabelCoverage, 0.8, true},
+		{"fraud recall", f.Values["recall"], 0.5, true},
+		{"fraud precision", f.Values["precision"], 0.5, true},
+		{"fraud predicted share", f.Values["predicted_share"], 0.4, true},
+		{"label coverage", rep.Metrics.Values["label_coverage"], 0.8, true},
 	} {
 		if c.got == nil || *c.got != c.want {
 			t.Errorf("%s = %v, want %v", c.name, c.got, c.want)
@@ -254,7 +254,7 @@ func TestMatrixContract(t *testing.T) {
 	}
 	// Wilson interval for 1 of 2 at 95% (statsmodels 0.13
 	// proportion_confint(1, 2, method="wilson") = (0.0945, 0.9055)).
-	if iv := f.RecallInterval; iv == nil || abs(iv[0]-0.0945) > 1e-4 || abs(iv[1]-0.9055) > 1e-4 {
+	if iv := f.Intervals["recall"]; iv == nil || abs(iv[0]-0.0945) > 1e-4 || abs(iv[1]-0.9055) > 1e-4 {
 		t.Errorf("fraud recall interval = %v, want about [0.0945, 0.9055]", iv)
 	}
 }

@@ -147,10 +147,10 @@ func (a *API) handleOverview(w http.ResponseWriter, r *http.Request) {
 				Name:        v.Window.Name,
 				Predictions: f.Predictions,
 				Labeled:     f.Labeled,
-				Coverage:    htmlNum(f.Metrics.LabelCoverage),
-				Accuracy:    htmlNum(f.Metrics.Accuracy),
-				Balanced:    htmlNum(f.Metrics.BalancedAccuracy),
-				MacroF1:     htmlNum(f.Metrics.MacroF1),
+				Coverage:    htmlNum(f.Metrics.Values["label_coverage"]),
+				Accuracy:    htmlNum(f.Metrics.Values["accuracy"]),
+				Balanced:    htmlNum(f.Metrics.Values["balanced_accuracy"]),
+				MacroF1:     htmlNum(f.Metrics.Values["macro_f1"]),
 			}
 			b := bounds(v.Window, v.Watermark)
 			ow.Length, ow.Lag, ow.From, ow.To = b.Length, b.Lag, timeText(b.From), timeText(b.To)
@@ -164,12 +164,12 @@ func (a *API) handleOverview(w http.ResponseWriter, r *http.Request) {
 					Name:           c,
 					Support:        cf.Support,
 					Predictions:    cf.Predictions,
-					Recall:         htmlNum(cf.Recall),
-					RecallCI:       htmlInterval(cf.RecallInterval),
-					Precision:      htmlNum(cf.Precision),
-					PrecisionCI:    htmlInterval(cf.PrecisionInterval),
-					Prevalence:     htmlNum(cf.Prevalence),
-					PredictedShare: htmlNum(cf.PredictedShare),
+					Recall:         htmlNum(cf.Values["recall"]),
+					RecallCI:       htmlInterval(cf.Intervals["recall"]),
+					Precision:      htmlNum(cf.Values["precision"]),
+					PrecisionCI:    htmlInterval(cf.Intervals["precision"]),
+					Prevalence:     htmlNum(cf.Values["prevalence"]),
+					PredictedShare: htmlNum(cf.Values["predicted_share"]),
 				})
 			}
 			om.Windows = append(om.Windows, ow)

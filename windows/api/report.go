@@ -72,33 +72,27 @@ type Figures struct {
 	Metrics    MetricFigures `json:"metrics"`
 }
 
-// MetricFigures are the overall metrics; nil means undefined (null in JSON).
+// MetricFigures are the metrics of windows.MetricDefs by name, computed
+// from one matrix. A nil value is undefined: null in JSON, never 0. In JSON
+// the window-scope metrics are fields of the object, beside "per_class"
+// (see figures.go).
 type MetricFigures struct {
-	Accuracy         *float64 `json:"accuracy"`
-	BalancedAccuracy *float64 `json:"balanced_accuracy"`
-	MacroF1          *float64 `json:"macro_f1"`
-	LabelCoverage    *float64 `json:"label_coverage"`
-	// MCC is the multi-class Matthews correlation (Gorodkin's R_K).
-	MCC *float64 `json:"mcc"`
-	// Kappa is Cohen's kappa.
-	Kappa    *float64                `json:"kappa"`
-	PerClass map[string]ClassFigures `json:"per_class"`
+	// Values holds every window-scope metric.
+	Values map[string]*float64
+	// PerClass holds every class's figures by class name.
+	PerClass map[string]ClassFigures
 }
 
-// ClassFigures are one class's figures; nil means undefined.
+// ClassFigures are one class's figures; a nil value is undefined.
 type ClassFigures struct {
-	Support int64 `json:"support"`
+	Support int64
 	// Predictions counts the predictions of the class, labeled or not.
-	Predictions         int64       `json:"predictions"`
-	Recall              *float64    `json:"recall"`
-	Precision           *float64    `json:"precision"`
-	Specificity         *float64    `json:"specificity"`
-	F1                  *float64    `json:"f1"`
-	Prevalence          *float64    `json:"prevalence"`
-	PredictedShare      *float64    `json:"predicted_share"`
-	RecallInterval      *[2]float64 `json:"recall_interval"`
-	PrecisionInterval   *[2]float64 `json:"precision_interval"`
-	SpecificityInterval *[2]float64 `json:"specificity_interval"`
+	Predictions int64
+	// Values holds every class-scope metric by name.
+	Values map[string]*float64
+	// Intervals holds the confidence interval of every class-scope metric
+	// that has one, by metric name (JSON "<name>_interval").
+	Intervals map[string]*[2]float64
 }
 
 // MatrixReport reads and computes the figures of q from st. now is the
@@ -193,28 +187,32 @@ func NewFigures(m *windows.Matrix, pred []int64, confidence float64) Figures {
 		Labeled:     mt.Labeled,
 		Confidence:  confidence,
 		Metrics: MetricFigures{
-			Accuracy:         mt.Accuracy,
-			BalancedAccuracy: mt.BalancedAccuracy,
-			MacroF1:          mt.MacroF1,
-			LabelCoverage:    mt.LabelCoverage,
-			MCC:              mt.MCC,
-			Kappa:            mt.Kappa,
-			PerClass:         make(map[string]ClassFigures, len(mt.PerClass)),
+			Values:   make(map[string]*float64),
+			PerClass: make(map[string]ClassFigures, len(mt.PerClass)),
 		},
 	}
-	for _, cm := range mt.PerClass {
-		f.Metrics.PerClass[cm.Class] = ClassFigures{
-			Support:             cm.Support,
-			Predictions:         cm.PredictedCount,
-			Recall:              cm.Recall,
-			Precision:           cm.Precision,
-			Specificity:         cm.Specificity,
-			F1:                  cm.F1,
-			Prevalence:          cm.Prevalence,
-			PredictedShare:      cm.PredictedShare,
-			RecallInterval:      pair(cm.RecallInterval),
-			PrecisionInterval:   pair(cm.PrecisionInterval),
-			SpecificityInterval: pair(cm.SpecificityInterval),
+	defs := windows.MetricDefs()
+	for k, cm := range mt.PerClass {
+		cf := ClassFigures{
+			Support:     cm.Support,
+			Predictions: cm.PredictedCount,
+			Values:      make(map[string]*float64),
+			Intervals:   make(map[string]*[2]float64),
+		}
+		for _, d := range defs {
+			if d.Scope != windows.ScopeClass {
+				continue
+			}
+			cf.Values[d.Name] = d.Value(&mt, k)
+			if d.Interval != nil {
+				cf.Intervals[d.Name] = pair(d.Interval(&mt, k))
+			}
+		}
+		f.Metrics.PerClass[cm.Class] = cf
+	}
+	for _, d := range defs {
+		if d.Scope == windows.ScopeWindow {
+			f.Metrics.Values[d.Name] = d.Value(&mt, 0)
 		}
 	}
 	return f
@@ -282,12 +280,12 @@ func writeTable(w io.Writer, rep Report) error {
 	fmt.Fprintf(tw, "segment\t%s\n", segment)
 	fmt.Fprintf(tw, "predictions\t%d\n", rep.Predictions)
 	fmt.Fprintf(tw, "labeled\t%d\n", rep.Labeled)
-	fmt.Fprintf(tw, "label coverage\t%s\n", num(mt.LabelCoverage))
-	fmt.Fprintf(tw, "accuracy\t%s\n", num(mt.Accuracy))
-	fmt.Fprintf(tw, "balanced accuracy\t%s\n", num(mt.BalancedAccuracy))
-	fmt.Fprintf(tw, "macro F1\t%s\n", num(mt.MacroF1))
-	fmt.Fprintf(tw, "MCC\t%s\n", num(mt.MCC))
-	fmt.Fprintf(tw, "Cohen's kappa\t%s\n", num(mt.Kappa))
+	defs := windows.MetricDefs()
+	for _, d := range defs {
+		if d.Scope == windows.ScopeWindow {
+			fmt.Fprintf(tw, "%s\t%s\n", d.Title, num(mt.Values[d.Name]))
+		}
+	}
 	if err := tw.Flush(); err != nil {
 		return fmt.Errorf("write report: %w", err)
 	}
@@ -308,12 +306,28 @@ func writeTable(w io.Writer, rep Report) error {
 
 	fmt.Fprintf(w, "\nper class (%s: Wilson score interval)\n", ci)
 	tw = tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-	fmt.Fprintf(tw, "class\tsupport\tpredictions\trecall\trecall %s\tprecision\tprecision %s\tspecificity\tF1\tprevalence\tpredicted share\n", ci, ci)
+	head := []string{"class", "support", "predictions"}
+	for _, d := range defs {
+		if d.Scope == windows.ScopeClass {
+			head = append(head, d.Title)
+			if d.Interval != nil {
+				head = append(head, d.Title+" "+ci)
+			}
+		}
+	}
+	fmt.Fprintln(tw, strings.Join(head, "\t"))
 	for _, c := range rep.Classes {
 		cf := mt.PerClass[c]
-		fmt.Fprintf(tw, "%s\t%d\t%d\t%s\t%s\t%s\t%s\t%s\t%s\t%s\t%s\n", c, cf.Support, cf.Predictions,
-			num(cf.Recall), interval(cf.RecallInterval), num(cf.Precision), interval(cf.PrecisionInterval),
-			num(cf.Specificity), num(cf.F1), num(cf.Prevalence), num(cf.PredictedShare))
+		cols := []string{c, strconv.FormatInt(cf.Support, 10), strconv.FormatInt(cf.Predictions, 10)}
+		for _, d := range defs {
+			if d.Scope == windows.ScopeClass {
+				cols = append(cols, num(cf.Values[d.Name]))
+				if d.Interval != nil {
+					cols = append(cols, interval(cf.Intervals[d.Name]))
+				}
+			}
+		}
+		fmt.Fprintln(tw, strings.Join(cols, "\t"))
 	}
 	if err := tw.Flush(); err != nil {
 		return fmt.Errorf("write report: %w", err)
@@ -345,14 +359,11 @@ func writeCSV(w io.Writer, rep Report) error {
 	row("summary", "", "", "predictions", count(rep.Predictions))
 	row("summary", "", "", "labeled", count(rep.Labeled))
 	row("summary", "", "", "confidence", opt(&rep.Confidence))
-	for _, f := range []struct {
-		name string
-		v    *float64
-	}{
-		{"label_coverage", mt.LabelCoverage}, {"accuracy", mt.Accuracy}, {"balanced_accuracy", mt.BalancedAccuracy},
-		{"macro_f1", mt.MacroF1}, {"mcc", mt.MCC}, {"kappa", mt.Kappa},
-	} {
-		row("summary", "", "", f.name, opt(f.v))
+	defs := windows.MetricDefs()
+	for _, d := range defs {
+		if d.Scope == windows.ScopeWindow {
+			row("summary", "", "", d.Name, opt(mt.Values[d.Name]))
+		}
 	}
 	for a, r := range rep.Matrix {
 		for p, n := range r {
@@ -375,16 +386,16 @@ func writeCSV(w io.Writer, rep Report) error {
 		cf := mt.PerClass[c]
 		row("class", c, "", "support", count(cf.Support))
 		row("class", c, "", "predictions", count(cf.Predictions))
-		for _, f := range []struct {
-			name string
-			v    *float64
-		}{
-			{"recall", cf.Recall}, {"recall_lower", lo(cf.RecallInterval)}, {"recall_upper", hi(cf.RecallInterval)},
-			{"precision", cf.Precision}, {"precision_lower", lo(cf.PrecisionInterval)}, {"precision_upper", hi(cf.PrecisionInterval)},
-			{"specificity", cf.Specificity}, {"specificity_lower", lo(cf.SpecificityInterval)}, {"specificity_upper", hi(cf.SpecificityInterval)},
-			{"f1", cf.F1}, {"prevalence", cf.Prevalence}, {"predicted_share", cf.PredictedShare},
-		} {
-			row("class", c, "", f.name, opt(f.v))
+		for _, d := range defs {
+			if d.Scope != windows.ScopeClass {
+				continue
+			}
+			row("class", c, "", d.Name, opt(cf.Values[d.Name]))
+			if d.Interval != nil {
+				iv := cf.Intervals[d.Name]
+				row("class", c, "", d.Name+"_lower", opt(lo(iv)))
+				row("class", c, "", d.Name+"_upper", opt(hi(iv)))
+			}
 		}
 	}
 	if err := cw.WriteAll(rows); err != nil {

@@ -9,6 +9,8 @@ classwatch_window_predictions), recomputes every ratio and Wilson interval
 with the reference libraries, and checks that exactly the defined ratios
 are present and equal to 1e-12. Exits non-zero on any difference.
 
+MCC and kappa are checked against matthews_corrcoef and cohen_kappa_score.
+
 The rules it checks are README.md "Metric definitions": a ratio with a zero
 denominator is absent. Per-class F1 and macro F1 follow classwatch's stated
 convention, equal to precision_recall_fscore_support(zero_division=0) and
@@ -26,7 +28,9 @@ import statsmodels
 from sklearn.metrics import (
     accuracy_score,
     balanced_accuracy_score,
+    cohen_kappa_score,
     f1_score,
+    matthews_corrcoef,
     multilabel_confusion_matrix,
     precision_recall_fscore_support,
 )
@@ -93,6 +97,13 @@ def main(path):
             present = sorted(set(y_true) | set(y_pred))
             want[key('classwatch_macro_f1_ratio', **w)] = f1_score(
                 y_true, y_pred, average='macro', labels=present, zero_division=0)
+            # classwatch leaves MCC out where scikit-learn returns 0 for
+            # a single actual or a single predicted class, and kappa where
+            # every label is one and the same class (NaN there).
+            if len(set(y_true)) > 1 and len(set(y_pred)) > 1:
+                want[key('classwatch_matthews_correlation', **w)] = matthews_corrcoef(y_true, y_pred)
+            if len(set(y_true) | set(y_pred)) > 1:
+                want[key('classwatch_cohen_kappa', **w)] = cohen_kappa_score(y_true, y_pred)
             prec, rec, f1, support = precision_recall_fscore_support(
                 y_true, y_pred, labels=classes, average=None, zero_division=0)
             mcm = multilabel_confusion_matrix(y_true, y_pred, labels=classes)
