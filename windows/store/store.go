@@ -355,6 +355,16 @@ type Store interface {
 	// Verify recomputes every cell and predicted count over the raw rows
 	// still kept and returns each difference.
 	Verify(ctx context.Context) ([]Difference, error)
+	// LabelDelays counts, over the predictions of q made by asOf, the time
+	// from each prediction's at to the at of its first real label version
+	// known at asOf, binned by edges (ascending): out[i] counts delays d
+	// with edges[i-1] ≤ d < edges[i], out[0] those below edges[0] and
+	// out[len(edges)] those at or above the last edge. Implied versions and
+	// unlabeled predictions are not counted.
+	LabelDelays(ctx context.Context, q Query, asOf time.Time, edges []time.Duration) ([]int64, error)
+	// LatestLabels returns, per model with a real label version, the
+	// greatest at of those versions.
+	LatestLabels(ctx context.Context) (map[string]time.Time, error)
 
 	// SaveAlert upserts an alert's current state and, when history is true,
 	// appends the record to the alert history, in one transaction.

@@ -56,6 +56,7 @@ func Exercise(t *testing.T, newStore func(t *testing.T) store.Store) {
 	t.Run("OrderIndependence", func(t *testing.T) { testOrderIndependence(t, newStore) })
 	t.Run("ReferenceHistory", func(t *testing.T) { testReferenceHistory(t, newStore) })
 	t.Run("Events", func(t *testing.T) { testEvents(t, newStore) })
+	t.Run("LabelDelays", func(t *testing.T) { testLabelDelays(t, newStore(t)) })
 }
 
 // bucketWidth is the bucket every test uses (the configured default).
