@@ -10,7 +10,8 @@
 //	GET /v1/models/{model}/matrix       any bucket-aligned period: ?from=T&to=T[&segment=S][&as_of=T]
 //	GET /healthz                        the process answers
 //	GET /readyz                         the store answers (else 503)
-//	GET /                               the HTML overview
+//	GET /                               the on-call overview (HTML)
+//	GET /models/{model}                 one model's page (HTML): ?segment=S
 //
 // Times are RFC 3339 in UTC. Undefined ratios are null, never 0. Errors are
 // {"error": "..."} with 400 for a request at fault, 404 for an unknown
@@ -48,6 +49,9 @@ type Options struct {
 	Logger *slog.Logger
 	// Now returns the current time; nil means time.Now.
 	Now func() time.Time
+	// History is how far before the watermark a model page's history
+	// reaches; 0 means DefaultHistory.
+	History time.Duration
 }
 
 // API serves the read endpoints. It is safe for concurrent use.
@@ -57,7 +61,13 @@ type API struct {
 	confidence float64
 	log        *slog.Logger
 	now        func() time.Time
-	overview   *template.Template
+	history    time.Duration
+	pages      pageTemplates
+}
+
+// pageTemplates are the parsed HTML pages.
+type pageTemplates struct {
+	overview, model, errPage *template.Template
 }
 
 // New returns an API over opts.Store and opts.Tracker, both required.
@@ -68,7 +78,12 @@ func New(opts Options) *API {
 		confidence: cmp.Or(opts.Confidence, DefaultConfidence),
 		log:        opts.Logger,
 		now:        opts.Now,
-		overview:   parseOverview(),
+		history:    cmp.Or(opts.History, DefaultHistory),
+		pages: pageTemplates{
+			overview: parsePage("overview", overviewContent),
+			model:    parsePage("model", modelContent),
+			errPage:  parsePage("error", errorContent),
+		},
 	}
 	if a.log == nil {
 		a.log = slog.New(slog.DiscardHandler)
@@ -87,6 +102,7 @@ func (a *API) Register(mux *http.ServeMux) {
 	mux.HandleFunc("GET /healthz", a.handleHealth)
 	mux.HandleFunc("GET /readyz", a.handleReady)
 	mux.HandleFunc("GET /{$}", a.handleOverview)
+	mux.HandleFunc("GET /models/{model}", a.handleModelPage)
 }
 
 // ModelSummary is one entry of GET /v1/models.

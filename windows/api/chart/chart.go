@@ -90,7 +90,7 @@ type svg struct {
 }
 
 func (s *svg) open(w, h float64, label string) {
-	fmt.Fprintf(&s.b, `<svg xmlns="http://www.w3.org/2000/svg" class="cw-chart" width="%s" height="%s" viewBox="0 0 %s %s" role="img" aria-label="%s">`,
+	fmt.Fprintf(&s.b, `<svg class="cw-chart" width="%s" height="%s" viewBox="0 0 %s %s" role="img" aria-label="%s">`,
 		f1(w), f1(h), f1(w), f1(h), esc(label))
 	fmt.Fprintf(&s.b, `<title>%s</title>`, esc(label))
 }
