@@ -62,7 +62,7 @@ func commands() []command {
 		{"audit", "print one model's confusion matrix and metrics for a past period", runAudit},
 		{"verify", "recompute every cell from the raw rows and report any difference", runVerify},
 		{"ingest", "bulk backfill NDJSON predictions or labels into the store", runIngest},
-		{"rules", "check a config file's alert rules (and the whole file) without starting", runRules},
+		{"rules", "check a config file's alert rules without starting, or backtest them over stored history", runRules},
 	}
 }
 

@@ -7,15 +7,19 @@ import (
 )
 
 // runRules is "classwatch rules check F": validate a config file, its
-// alerts and notifiers sections included, without starting anything.
-func runRules(_ context.Context, args []string, stdout, stderr io.Writer) error {
-	fs := newFlagSet("rules", "rules check FILE", stderr)
+// alerts and notifiers sections included, without starting anything; and
+// "classwatch rules backtest" (backtest.go).
+func runRules(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	if len(args) > 0 && args[0] == "backtest" {
+		return runBacktest(ctx, args[1:], stdout, stderr)
+	}
+	fs := newFlagSet("rules", "rules check FILE | rules backtest --config F --from T --to T", stderr)
 	if err := parseFlags(fs, args, -1); err != nil {
 		return err
 	}
 	if fs.Arg(0) != "check" {
 		fs.Usage()
-		return usagef("rules: unknown subcommand %q (want check)", fs.Arg(0))
+		return usagef("rules: unknown subcommand %q (want check or backtest)", fs.Arg(0))
 	}
 	check := newFlagSet("rules check", "rules check FILE", stderr)
 	if err := parseFlags(check, fs.Args()[1:], 1); err != nil {
