@@ -147,7 +147,7 @@ func testRules() []alerts.Rule {
 		{Name: "missed-fraud", Kind: alerts.KindConfusionRise, Model: screen, Window: "12h", Schedule: hourly, Pairs: []alerts.Pair{{Actual: "fraud", Predicted: "legit"}}, Reference: ref},
 		{Name: "mix", Kind: alerts.KindPrevalenceShift, Model: alerts.AllModels, Window: "12h", Schedule: hourly, Reference: ref},
 		{Name: "queues", Kind: alerts.KindOutputShift, Model: alerts.AllModels, Window: "12h", Schedule: hourly, Reference: ref, PSIThreshold: 0.1},
-		{Name: "quiet", Kind: alerts.KindSilence, Model: alerts.AllModels, Schedule: "*/20 * * * *", SilentFor: 2 * time.Hour},
+		{Name: "quiet", Kind: alerts.KindNoTraffic, Model: alerts.AllModels, Schedule: "*/20 * * * *", QuietFor: 2 * time.Hour},
 	}
 }
 
