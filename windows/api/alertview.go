@@ -109,25 +109,21 @@ func stateRank(s string) int {
 	return 1
 }
 
-// firedIn reads the alert history of model over [from, to) and keeps the
-// records of alerts entering the firing state, oldest first.
-func (a *API) firedIn(ctx context.Context, model string, from, to time.Time) ([]alertView, error) {
-	recs, err := a.store.AlertHistory(ctx, from, to, 0)
-	if err != nil {
-		return nil, fmt.Errorf("read alert history: %w", err)
-	}
-	out := []alertView{}
+// firedRecords decodes the history records of model entering the firing
+// state, oldest first (the history comes newest first).
+func firedRecords(recs []store.AlertRecord, model string) []alertView {
+	var out []alertView
 	for _, rec := range recs {
 		if rec.Model != model || rec.State != "firing" {
 			continue
 		}
 		var v alertView
 		if err := json.Unmarshal(rec.Data, &v); err != nil {
-			continue // the history JSON endpoint shows the same skip in its log
+			continue // GET /v1/alerts/history logs the same record
 		}
 		v.Key, v.Rule, v.Model, v.Class, v.State, v.UpdatedAt = rec.Key, rec.Rule, rec.Model, rec.Class, rec.State, rec.UpdatedAt
 		out = append(out, v)
 	}
 	slices.Reverse(out)
-	return out, nil
+	return out
 }

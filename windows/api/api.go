@@ -8,6 +8,7 @@
 //	GET /v1/models                      models with classes, watermark, counts, windows
 //	GET /v1/models/{model}/windows      every window: bounds, matrix, metrics
 //	GET /v1/models/{model}/matrix       any bucket-aligned period: ?from=T&to=T[&segment=S][&as_of=T]
+//	GET /v1/models/{model}/report       the audit report (HTML) of a period: same parameters
 //	GET /healthz                        the process answers
 //	GET /readyz                         the store answers (else 503)
 //	GET /                               the on-call overview (HTML)
@@ -99,6 +100,7 @@ func (a *API) Register(mux *http.ServeMux) {
 	mux.HandleFunc("GET /v1/models", a.handleModels)
 	mux.HandleFunc("GET /v1/models/{model}/windows", a.handleWindows)
 	mux.HandleFunc("GET /v1/models/{model}/matrix", a.handleMatrix)
+	mux.HandleFunc("GET /v1/models/{model}/report", a.handleReport)
 	mux.HandleFunc("GET /healthz", a.handleHealth)
 	mux.HandleFunc("GET /readyz", a.handleReady)
 	mux.HandleFunc("GET /{$}", a.handleOverview)
@@ -260,28 +262,10 @@ func (a *API) storeKnows(ctx context.Context, model string) (bool, error) {
 }
 
 func (a *API) handleMatrix(w http.ResponseWriter, r *http.Request) {
-	q := MatrixQuery{Model: r.PathValue("model"), Bucket: a.tracker.Options(r.PathValue("model")).Bucket}
-	params := r.URL.Query()
-	var err error
-	if q.From, err = parseTime(params, "from", true); err != nil {
+	q, err := a.matrixQuery(r)
+	if err != nil {
 		writeError(w, http.StatusBadRequest, err.Error())
 		return
-	}
-	if q.To, err = parseTime(params, "to", true); err != nil {
-		writeError(w, http.StatusBadRequest, err.Error())
-		return
-	}
-	if params.Has("as_of") {
-		asOf, err := parseTime(params, "as_of", false)
-		if err != nil {
-			writeError(w, http.StatusBadRequest, err.Error())
-			return
-		}
-		q.AsOf = &asOf
-	}
-	if params.Has("segment") {
-		seg := params.Get("segment")
-		q.Segment = &seg
 	}
 	rep, err := MatrixReport(r.Context(), a.store, q, a.now(), a.confidence)
 	if err != nil {
@@ -289,6 +273,32 @@ func (a *API) handleMatrix(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	writeJSON(w, http.StatusOK, rep)
+}
+
+// matrixQuery reads the model, from, to, as_of and segment of a matrix or
+// report request; it returns a *RequestError for a malformed parameter.
+func (a *API) matrixQuery(r *http.Request) (MatrixQuery, error) {
+	q := MatrixQuery{Model: r.PathValue("model"), Bucket: a.tracker.Options(r.PathValue("model")).Bucket}
+	params := r.URL.Query()
+	var err error
+	if q.From, err = parseTime(params, "from", true); err != nil {
+		return q, err
+	}
+	if q.To, err = parseTime(params, "to", true); err != nil {
+		return q, err
+	}
+	if params.Has("as_of") {
+		asOf, err := parseTime(params, "as_of", false)
+		if err != nil {
+			return q, err
+		}
+		q.AsOf = &asOf
+	}
+	if params.Has("segment") {
+		seg := params.Get("segment")
+		q.Segment = &seg
+	}
+	return q, nil
 }
 
 func parseTime(params map[string][]string, name string, required bool) (time.Time, error) {

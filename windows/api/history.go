@@ -11,18 +11,18 @@ import (
 	"github.com/classwatch/classwatch/windows/store"
 )
 
-// periodFigures are the figures of one step of a history: a day of an
+// PeriodFigures are the figures of one step of a history: a day of an
 // audit report, or a day or window length on a model page.
-type periodFigures struct {
-	From        time.Time                `json:"from"`
-	To          time.Time                `json:"to"`
-	Predictions int64                    `json:"predictions"`
-	Labeled     int64                    `json:"labeled"`
-	PerClass    map[string]periodClasses `json:"per_class"`
+type PeriodFigures struct {
+	From        time.Time              `json:"from"`
+	To          time.Time              `json:"to"`
+	Predictions int64                  `json:"predictions"`
+	Labeled     int64                  `json:"labeled"`
+	PerClass    map[string]PeriodClass `json:"per_class"`
 }
 
-// periodClasses are one class's figures in one step; nil is undefined.
-type periodClasses struct {
+// PeriodClass is one class's figures in one step; nil is undefined.
+type PeriodClass struct {
 	Support            int64       `json:"support"`
 	Recall             *float64    `json:"recall"`
 	RecallInterval     *[2]float64 `json:"recall_interval"`
@@ -34,7 +34,7 @@ type periodClasses struct {
 // last step may be shorter) and computes each step's figures over classes.
 // Counts of a class not in classes are skipped: the caller passes every
 // class the counts name.
-func history(classes []string, counts store.Counts, from, to time.Time, step time.Duration, confidence float64) []periodFigures {
+func history(classes []string, counts store.Counts, from, to time.Time, step time.Duration, confidence float64) []PeriodFigures {
 	if step <= 0 || !to.After(from) {
 		return nil
 	}
@@ -63,14 +63,14 @@ func history(classes []string, counts store.Counts, from, to time.Time, step tim
 			}
 		}
 	}
-	out := make([]periodFigures, n)
+	out := make([]PeriodFigures, n)
 	for i := range out {
-		pf := periodFigures{From: from.Add(time.Duration(i) * step), PerClass: make(map[string]periodClasses, len(classes))}
+		pf := PeriodFigures{From: from.Add(time.Duration(i) * step), PerClass: make(map[string]PeriodClass, len(classes))}
 		pf.To = minTime(pf.From.Add(step), to)
 		mt := windows.Compute(mats[i], preds[i], confidence)
 		pf.Predictions, pf.Labeled = mt.Predictions, mt.Labeled
 		for _, cm := range mt.PerClass {
-			pc := periodClasses{Support: cm.Support, Recall: cm.Recall, RecallInterval: pair(cm.RecallInterval), Prevalence: cm.Prevalence}
+			pc := PeriodClass{Support: cm.Support, Recall: cm.Recall, RecallInterval: pair(cm.RecallInterval), Prevalence: cm.Prevalence}
 			if lo, hi, ok := stats.Wilson(cm.Support, mt.Labeled, confidence); ok {
 				pc.PrevalenceInterval = &[2]float64{lo, hi}
 			}

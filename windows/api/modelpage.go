@@ -260,8 +260,8 @@ func (a *API) references(ctx context.Context, p *modelPage, alerts []alertView) 
 		span := chart.Span{From: ref.From, To: ref.To, Label: "reference period of rule " + al.Rule}
 		p.spans[al.Class] = append(p.spans[al.Class], span)
 		rp := referencePanel{Rule: al.Rule, From: rfc(al.Result.From), To: rfc(al.Result.To), RefFrom: rfc(ref.From), RefTo: rfc(ref.To)}
-		cur, err1 := a.periodFigures(ctx, p, al.Result.From, al.Result.To)
-		old, err2 := a.periodFigures(ctx, p, ref.From, ref.To)
+		cur, err1 := a.PeriodFigures(ctx, p, al.Result.From, al.Result.To)
+		old, err2 := a.PeriodFigures(ctx, p, ref.From, ref.To)
 		if err := errors.Join(err1, err2); err != nil {
 			a.log.WarnContext(ctx, "model page: read reference period", "rule", al.Rule, "err", err)
 			rp.Error = "The periods could not be read; see the daemon's log."
@@ -286,9 +286,9 @@ func (a *API) references(ctx context.Context, p *modelPage, alerts []alertView) 
 
 func rfc(t time.Time) string { return t.UTC().Format(time.RFC3339) }
 
-// periodFigures reads the model's figures over [from, to) in the page's
+// PeriodFigures reads the model's figures over [from, to) in the page's
 // segment.
-func (a *API) periodFigures(ctx context.Context, p *modelPage, from, to time.Time) (Figures, error) {
+func (a *API) PeriodFigures(ctx context.Context, p *modelPage, from, to time.Time) (Figures, error) {
 	q := MatrixQuery{Model: p.Model, From: from, To: to, Bucket: a.tracker.Options(p.Model).Bucket, Segment: p.segment}
 	rep, err := MatrixReport(ctx, a.store, q, a.now(), a.confidence)
 	return rep.Figures, err

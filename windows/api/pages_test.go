@@ -142,7 +142,7 @@ func TestModelPage(t *testing.T) {
 	}
 	// Window 1h at watermark 12:05 holds txn-1..3: matrix rows actual.
 	want := map[[2]string]int64{{"legit", "legit"}: 1, {"legit", "fraud"}: 0, {"fraud", "legit"}: 1, {"fraud", "fraud"}: 1}
-	checkCells(t, page, "1h", want)
+	checkCells(t, page, "Window 1h ", want)
 	for _, s := range []string{
 		"Window 1h", "Window 30m-matured", "matured, lag 30m", "audit report of this window",
 		"/v1/models/card-screen/report?from=2026-03-01T11%3A05%3A00Z&amp;to=2026-03-01T12%3A05%3A00Z",
@@ -160,7 +160,7 @@ func TestModelPage(t *testing.T) {
 	if status != http.StatusOK {
 		t.Fatalf("GET model page of a segment: %d", status)
 	}
-	checkCells(t, page, "1h", map[[2]string]int64{{"legit", "legit"}: 0, {"fraud", "legit"}: 1, {"fraud", "fraud"}: 1})
+	checkCells(t, page, "Window 1h ", map[[2]string]int64{{"legit", "legit"}: 0, {"fraud", "legit"}: 1, {"fraud", "fraud"}: 1})
 
 	status, page = b.page(t, "/models/no-such-model")
 	if status != http.StatusNotFound || !strings.Contains(page, `No model named &#34;no-such-model&#34;`) {
@@ -168,12 +168,12 @@ func TestModelPage(t *testing.T) {
 	}
 }
 
-// checkCells compares the first heatmap after "Window <window>" with want.
-func checkCells(t *testing.T, page, window string, want map[[2]string]int64) {
+// checkCells compares the first heatmap after marker with want.
+func checkCells(t *testing.T, page, marker string, want map[[2]string]int64) {
 	t.Helper()
-	i := strings.Index(page, "Window "+window+" ")
+	i := strings.Index(page, marker)
 	if i < 0 {
-		t.Fatalf("no section for window %s", window)
+		t.Fatalf("page has no %q", marker)
 	}
 	got := map[[2]string]int64{}
 	for _, m := range cellRE.FindAllStringSubmatch(page[i:], 4) {
@@ -182,7 +182,7 @@ func checkCells(t *testing.T, page, window string, want map[[2]string]int64) {
 	}
 	for k, n := range want {
 		if got[k] != n {
-			t.Errorf("window %s cell %v = %d, want %d (cells %v)", window, k, got[k], n, got)
+			t.Errorf("%s: cell %v = %d, want %d (cells %v)", marker, k, got[k], n, got)
 		}
 	}
 }

@@ -100,48 +100,71 @@ type ClassFigures struct {
 // for a query at fault and wraps store.ErrUnknownModel for a model the
 // store does not know.
 func MatrixReport(ctx context.Context, st store.Store, q MatrixQuery, now time.Time, confidence float64) (Report, error) {
+	p, err := readPeriod(ctx, st, q, now)
+	if err != nil {
+		return Report{}, err
+	}
+	return p.report(confidence)
+}
+
+// period is what MatrixReport reads: the counts of a query and the classes
+// that order them.
+type period struct {
+	q       MatrixQuery
+	asOf    time.Time
+	classes []string
+	counts  store.Counts
+}
+
+// readPeriod validates q and reads its counts: as of q.AsOf from the raw
+// rows, else the maintained cells as of now.
+func readPeriod(ctx context.Context, st store.Store, q MatrixQuery, now time.Time) (period, error) {
 	infos, err := st.Models(ctx)
 	if err != nil {
-		return Report{}, fmt.Errorf("list models: %w", err)
+		return period{}, fmt.Errorf("list models: %w", err)
 	}
 	i := slices.IndexFunc(infos, func(m store.ModelInfo) bool { return m.Name == q.Model })
 	if i < 0 {
-		return Report{}, fmt.Errorf("model %q: %w", q.Model, store.ErrUnknownModel)
+		return period{}, fmt.Errorf("model %q: %w", q.Model, store.ErrUnknownModel)
 	}
 	if err := q.validate(); err != nil {
-		return Report{}, err
+		return period{}, err
 	}
 	sq := store.Query{Model: q.Model, From: q.From, To: q.To, Segment: q.Segment}
-	var counts store.Counts
-	asOf := now.UTC()
+	p := period{q: q, asOf: now.UTC()}
 	if q.AsOf != nil {
-		asOf = q.AsOf.UTC()
-		counts, err = st.CountsAsOf(ctx, sq, asOf)
+		p.asOf = q.AsOf.UTC()
+		p.counts, err = st.CountsAsOf(ctx, sq, p.asOf)
 	} else {
-		counts, err = st.Counts(ctx, sq)
+		p.counts, err = st.Counts(ctx, sq)
 	}
 	if err != nil {
-		return Report{}, fmt.Errorf("read counts: %w", err)
+		return period{}, fmt.Errorf("read counts: %w", err)
 	}
 	// A class registered after the model list was read may appear in the
 	// counts: append it rather than fail.
-	classes := slices.Clone(infos[i].Classes)
-	for _, c := range counts.Cells {
-		classes = appendNew(classes, c.Actual, c.Predicted)
+	p.classes = slices.Clone(infos[i].Classes)
+	for _, c := range p.counts.Cells {
+		p.classes = appendNew(p.classes, c.Actual, c.Predicted)
 	}
-	for _, p := range counts.Predicted {
-		classes = appendNew(classes, p.Predicted)
+	for _, c := range p.counts.Predicted {
+		p.classes = appendNew(p.classes, c.Predicted)
 	}
-	m, pred, err := windows.FromCounts(classes, counts)
+	return p, nil
+}
+
+// report sums the period's counts into its Report.
+func (p period) report(confidence float64) (Report, error) {
+	m, pred, err := windows.FromCounts(p.classes, p.counts)
 	if err != nil {
 		return Report{}, fmt.Errorf("sum counts: %w", err)
 	}
 	return Report{
-		Model:   q.Model,
-		From:    q.From.UTC(),
-		To:      q.To.UTC(),
-		AsOf:    asOf,
-		Segment: q.Segment,
+		Model:   p.q.Model,
+		From:    p.q.From.UTC(),
+		To:      p.q.To.UTC(),
+		AsOf:    p.asOf,
+		Segment: p.q.Segment,
 		Figures: NewFigures(m, pred, confidence),
 	}, nil
 }
