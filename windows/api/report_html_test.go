@@ -46,9 +46,9 @@ func fillReportScenario(t *testing.T, b *testBundle) {
 		store.Prediction{ID: "txn-3", At: at(3), Predicted: "legit"},
 		store.Prediction{ID: "txn-4", At: at(70), Predicted: "legit"})
 	b.label(t, "card-screen",
-		store.Label{ID: "txn-1", Actual: "fraud", At: at(3)},     // 2m after the prediction
-		store.Label{ID: "txn-2", Actual: "legit", At: at(62)},    // 1h after
-		store.Label{ID: "txn-2", Actual: "fraud", At: at(180)},   // corrected after the as-of time
+		store.Label{ID: "txn-1", Actual: "fraud", At: at(3)},      // 2m after the prediction
+		store.Label{ID: "txn-2", Actual: "legit", At: at(62)},     // 1h after
+		store.Label{ID: "txn-2", Actual: "fraud", At: at(180)},    // corrected after the as-of time
 		store.Label{ID: "txn-3", Actual: "legit", At: at(3 * 60)}) // 2h57m after
 	b.saveAlert(t, "fraud-recall-floor", "card-screen", "fraud", "firing", at(30), 0.5, [2]float64{0.09, 0.91}, true)
 }
