@@ -8,6 +8,26 @@
 // is read from Metrics. The exporter, the API, the audit report and the
 // rules all iterate that table.
 //
+// # Series budget of /metrics
+//
+// A scrape's size grows with models × windows × classes², the confusion
+// cells: at the default caps (100 models, 50 classes, three windows) a full
+// scrape has 888,100 series, 84 MB of text. The gatherer therefore keeps a
+// per-scrape series budget, TrackerOptions.MaxSeries (DefaultMaxSeries,
+// 80,000 series, about 7 MB at those caps). Each model's series fall in four
+// tiers: (1) the watermark and the window series (bounds, counts,
+// window-scope figures), (2) the per-class series, (3) the non-zero
+// confusion cells, (4) the zero confusion cells. Tier by tier, every model
+// gets the tier while the budget holds it; the first tier that does not fit
+// for all goes to the models with the fewest such series first (ties by
+// name) while it fits, and no model gets a later tier. A model thus loses
+// its zero cells first, then all its cells, then its per-class series,
+// never part of a tier, and the same counts give the same scrape.
+// classwatch_scrape_omitted_series{model} says how many series each model
+// lost (0 when none); it is exported outside the budget, so a scrape has at
+// most MaxSeries series plus one per model. CheckScrapeBudget tells from
+// the configured caps whether a full scrape can exceed the budget.
+//
 // Everything here except the rolling state is a pure function of its
 // arguments: no I/O and no clock. The watermark and "now" arrive as
 // parameters, so a figure is reproducible from the counts that produced it.

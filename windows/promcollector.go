@@ -33,6 +33,7 @@ type promGatherer struct {
 	labeled       family
 	confusion     family
 	classPredicts family
+	omitted       family
 	// perWindow and perClass are the exported metrics of MetricDefs, with
 	// their interval bounds.
 	perWindow, perClass []metricFamily
@@ -65,7 +66,15 @@ func NewGatherer(t *Tracker, confidence float64) prometheus.Gatherer {
 		labeled:       family{"classwatch_window_labeled", "Predictions made in the window that have a label."},
 		confusion:     family{"classwatch_confusion", "Labeled predictions in the window by actual and predicted class."},
 		classPredicts: family{"classwatch_window_class_predictions", "Predictions of the class made in the window, labeled or not."},
+		omitted:       family{"classwatch_scrape_omitted_series", "Series of the model left out of this scrape by the series budget (see the windows package documentation); 0 when none."},
 	}
+	g.perWindow, g.perClass = metricFamilies()
+	return g
+}
+
+// metricFamilies returns the exported metrics of MetricDefs, each followed
+// by its interval bounds when it exports them, by scope.
+func metricFamilies() (perWindow, perClass []metricFamily) {
 	for _, d := range MetricDefs() {
 		if d.Prom == "" {
 			continue
@@ -89,23 +98,29 @@ func NewGatherer(t *Tracker, confidence float64) prometheus.Gatherer {
 				metricFamily{family{d.PromUpper(), "Upper bound of the " + d.PromBounds + "."}, bound(true)})
 		}
 		if d.Scope == ScopeClass {
-			g.perClass = append(g.perClass, fams...)
+			perClass = append(perClass, fams...)
 		} else {
-			g.perWindow = append(g.perWindow, fams...)
+			perWindow = append(perWindow, fams...)
 		}
 	}
-	return g
+	return perWindow, perClass
 }
 
 // Gather builds every series from the tracker's current views. Undefined
-// ratios are left out; counts are always sent, zeros included. Families
-// without a series are left out, as a registry leaves them out.
+// ratios are left out; counts are always sent, zeros included, within the
+// tracker's series budget (see allocate). Families without a series are
+// left out, as a registry leaves them out.
 func (g *promGatherer) Gather() ([]*dto.MetricFamily, error) {
 	models, samples := g.snapshot()
+	allocate(models, g.t.maxSeries)
 	b := newFamilyBuilder(samples, 4*samples)
+	b.begin(g.omitted)
+	for _, mf := range models {
+		b.add(float64(mf.omitted), mf.pair)
+	}
 	b.begin(g.watermark)
 	for _, mf := range models {
-		if !mf.watermark.IsZero() {
+		if !mf.watermark.IsZero() && mf.level > tierWindow {
 			b.add(unixSeconds(mf.watermark), mf.pair)
 		}
 	}
@@ -114,6 +129,9 @@ func (g *promGatherer) Gather() ([]*dto.MetricFamily, error) {
 	perWindow := func(f family, value func(vf *viewFigures) (float64, bool)) {
 		b.begin(f)
 		for _, mf := range models {
+			if mf.level <= tierWindow {
+				continue
+			}
 			for i := range mf.views {
 				if v, ok := value(&mf.views[i]); ok {
 					b.add(v, mf.pair, mf.views[i].pair)
@@ -139,6 +157,9 @@ func (g *promGatherer) Gather() ([]*dto.MetricFamily, error) {
 		b.begin(f)
 		for _, r := range refs {
 			mf := &models[r.model]
+			if mf.level <= tierClass {
+				continue
+			}
 			for i := range mf.views {
 				if v, ok := value(&mf.views[i].m, r.index); ok {
 					b.add(v, mf.class[r.index], mf.pair, mf.views[i].pair)
@@ -151,13 +172,19 @@ func (g *promGatherer) Gather() ([]*dto.MetricFamily, error) {
 		perClass(f.family, f.value)
 	}
 
-	// {actual, model, predicted, window}: every cell, zeros included.
+	// {actual, model, predicted, window}: every cell, zeros included,
+	// unless the budget leaves the model's zero cells or all its cells out.
 	b.begin(g.confusion)
 	for _, r := range refs {
 		mf := &models[r.model]
+		if mf.level <= tierCells {
+			continue
+		}
 		for _, p := range mf.byName {
 			for i := range mf.views {
-				b.add(float64(mf.views[i].v.Matrix.At(r.index, p)), mf.actual[r.index], mf.pair, mf.predicted[p], mf.views[i].pair)
+				if n := mf.views[i].v.Matrix.At(r.index, p); n != 0 || mf.level > tierZeroCells {
+					b.add(float64(n), mf.actual[r.index], mf.pair, mf.predicted[p], mf.views[i].pair)
+				}
 			}
 		}
 	}
@@ -174,6 +201,11 @@ type modelFigures struct {
 	class, actual, predicted []*dto.LabelPair
 	// byName lists class indices in class-name order.
 	byName []int
+	// tiers counts the model's series per tier; level is how many tiers
+	// the series budget lets it export and omitted how many series that
+	// leaves out.
+	tiers          [numTiers]int
+	level, omitted int
 }
 
 type viewFigures struct {
@@ -205,8 +237,11 @@ func (g *promGatherer) snapshot() (models []modelFigures, samples int) {
 			mf.byName[k] = k
 		}
 		slices.SortFunc(mf.byName, func(a, b int) int { return strings.Compare(classes[a], classes[b]) })
-		// Per window: the window series, n² cells and the class series.
-		samples += 1 + len(views)*(4+len(g.perWindow)+n*n+(1+len(g.perClass))*n)
+		g.tierSizes(&mf)
+		samples += 1 // omitted
+		for _, s := range mf.tiers {
+			samples += s
+		}
 		models = append(models, mf)
 	}
 	return models, samples

@@ -35,7 +35,14 @@ const scrapeGolden = "testdata/metrics/scrape.prom"
 // predictions have no labels yet, and a configured model with no traffic.
 func goldenTracker(t testing.TB) *windows.Tracker {
 	t.Helper()
+	return goldenTrackerWith(t, 0)
+}
+
+// goldenTrackerWith is goldenTracker with a series budget.
+func goldenTrackerWith(t testing.TB, maxSeries int) *windows.Tracker {
+	t.Helper()
 	tr, err := windows.NewTracker(windows.TrackerOptions{
+		MaxSeries: maxSeries,
 		Models: []windows.ModelOptions{
 			{Name: "parcel-sorter", Windows: []windows.Window{
 				{Name: "1h", Length: time.Hour},
@@ -319,7 +326,7 @@ func TestMergeGatherers(t *testing.T) {
 	if !slices.IsSorted(names) {
 		t.Errorf("merged families not sorted by name: %v", names)
 	}
-	if got, want := len(names), 2+21; got != want {
+	if got, want := len(names), 2+22; got != want {
 		t.Errorf("merged %d families, want %d: %v", got, want, names)
 	}
 

@@ -56,6 +56,10 @@ type TrackerOptions struct {
 	// Store is read by Load and Refresh; a tracker without a store is fed
 	// by Apply alone.
 	Store store.Store
+	// MaxSeries is the series budget of one scrape of the tracker's
+	// gatherer (NewGatherer); zero means DefaultMaxSeries, negative no
+	// budget. See the package documentation.
+	MaxSeries int
 }
 
 // Tracker keeps, per model, the confusion counts of every configured window
@@ -119,6 +123,7 @@ type Tracker struct {
 	now        func() time.Time
 	configured map[string]ModelOptions
 	defaults   ModelOptions
+	maxSeries  int
 
 	// syncMu serialises Load and Refresh, which share the journal.
 	syncMu sync.Mutex
@@ -153,6 +158,10 @@ func NewTracker(opts TrackerOptions) (*Tracker, error) {
 	}
 	if t.now == nil {
 		t.now = time.Now
+	}
+	t.maxSeries = opts.MaxSeries
+	if t.maxSeries == 0 {
+		t.maxSeries = DefaultMaxSeries
 	}
 	t.defaults = ModelOptions{Bucket: opts.DefaultBucket, Windows: slices.Clone(opts.DefaultWindows)}
 	if t.defaults.Bucket == 0 {
