@@ -43,16 +43,25 @@
 //
 // # Concurrency
 //
-// Label batches of a model, ApplyLabelTimeout and PurgeRaw take the model's
-// label advisory lock (transaction-scoped) first, so the versions a batch
-// reads are the ones it builds on and no row is locked or updated per label.
-// Prediction batches do not take it; they take the model's early-label lock
-// in shared mode. A label batch that finds an unknown id takes that lock
-// exclusively before it looks again and holds the label as early: either
-// the prediction batch committed first and the label joins it, or the
-// prediction batch waits and then finds the early label. Count rows are
-// upserted in key order, so two batches touching the same rows queue
-// instead of deadlocking; transactions that fail on a deadlock, a
+// Label batches of one model run side by side. Each new label version is
+// numbered after the versions of its prediction that the batch read, and
+// label_versions' unique key (model_id, pkey, seq) admits one version per
+// number: when two batches add a version to the same prediction at once,
+// the second insert waits for the first batch, fails with a unique
+// violation once it commits, and the second batch is retried from the
+// start, now reading the first one's version. No row is locked or updated
+// per label. Batches copy their versions and upsert their count rows in
+// key order, so two batches that touch the same rows queue instead of
+// deadlocking.
+//
+// Label batches take the model's label advisory lock (transaction-scoped)
+// in shared mode; ApplyLabelTimeout and PurgeRaw take it exclusively, so
+// they never run beside a label batch of their model. Prediction batches
+// do not take it; they take the model's early-label lock in shared mode. A
+// label batch that finds an unknown id takes that lock exclusively before
+// it looks again and holds the label as early: either the prediction batch
+// committed first and the label joins it, or the prediction batch waits
+// and then finds the early label. Transactions that fail on a deadlock, a
 // serialization failure or a lost insert race are retried a few times.
 // Advisory lock keys include the search path, so stores in different
 // schemas of one database do not block each other.

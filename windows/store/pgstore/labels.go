@@ -13,20 +13,24 @@ import (
 )
 
 // versionRows collects new label versions, copied into label_versions in
-// one COPY. They are known to be new: label batches of a model hold its
-// label lock and have read the versions of the predictions they touch, and
-// early labels joining a new prediction are its first versions.
+// one COPY. Each is numbered after the versions of its prediction that the
+// batch read (seq): should a concurrent batch have added a version to the
+// same prediction meanwhile, the unique key (model_id, pkey, seq) refuses
+// the copy and the batch is retried. Early labels joining a new prediction
+// are its first versions.
 type versionRows struct {
 	models  []int32
 	buckets []time.Time
 	pkeys   []int64
+	seqs    []int32
 	implied []bool
 	ats     []time.Time
 	actuals []string
 }
 
-func (v *versionRows) add(model int32, bucket time.Time, pkey int64, implied bool, at time.Time, actual string) {
+func (v *versionRows) add(model int32, bucket time.Time, pkey int64, seq int32, implied bool, at time.Time, actual string) {
 	v.models = append(v.models, model)
+	v.seqs = append(v.seqs, seq)
 	v.buckets = append(v.buckets, bucket)
 	v.pkeys = append(v.pkeys, pkey)
 	v.implied = append(v.implied, implied)
@@ -45,15 +49,15 @@ func (v *versionRows) copy(ctx context.Context, tx conn) error {
 		order[i] = i
 	}
 	slices.SortFunc(order, func(x, y int) int {
-		return cmp.Or(cmp.Compare(v.models[x], v.models[y]), cmp.Compare(v.pkeys[x], v.pkeys[y]))
+		return cmp.Or(cmp.Compare(v.models[x], v.models[y]), cmp.Compare(v.pkeys[x], v.pkeys[y]), cmp.Compare(v.seqs[x], v.seqs[y]))
 	})
-	row := make([]any, 6)
+	row := make([]any, 7)
 	src := pgx.CopyFromSlice(len(order), func(i int) ([]any, error) {
 		i = order[i]
-		row[0], row[1], row[2], row[3], row[4], row[5] = v.models[i], v.buckets[i], v.pkeys[i], v.implied[i], v.ats[i], v.actuals[i]
+		row[0], row[1], row[2], row[3], row[4], row[5], row[6] = v.models[i], v.buckets[i], v.pkeys[i], v.seqs[i], v.implied[i], v.ats[i], v.actuals[i]
 		return row, nil
 	})
-	_, err := tx.CopyFrom(ctx, pgx.Identifier{"label_versions"}, []string{"model_id", "bucket", "pkey", "implied", "at", "actual"}, src)
+	_, err := tx.CopyFrom(ctx, pgx.Identifier{"label_versions"}, []string{"model_id", "bucket", "pkey", "seq", "implied", "at", "actual"}, src)
 	return err
 }
 
@@ -96,6 +100,7 @@ type target struct {
 	bucket             time.Time
 	segment, predicted string
 	versions           []version
+	seq                int32   // the greatest seq of its versions (0: none)
 	before             version // current label before the batch
 	had                bool
 }
@@ -106,11 +111,12 @@ type target struct {
 // Labels live apart from predictions: a label line costs an index lookup of
 // its prediction in predictions, a lookup of the prediction's versions in
 // its day of label_versions and the copy of the new version there. Nothing
-// is updated in place. Label batches of one model are serialized by an
-// advisory lock taken first, so the versions read are the ones the batch
-// builds on; the outcome of each line is then decided in memory, in line
-// order, and the writes go as one COPY and one round trip of set-based
-// statements.
+// is updated in place. The outcome of each line is decided in memory, in
+// line order, and the writes go as one COPY and one round trip of
+// set-based statements. Label batches of one model run side by side: the
+// numbered versions (see versionRows) make a batch that raced another on
+// the same prediction fail and retry, so the versions a batch builds on
+// are the ones it read.
 func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.Time) (store.LabelResult, error) {
 	res := store.LabelResult{Outcomes: make([]store.LabelOutcome, len(batch))}
 	if len(batch) == 0 {
@@ -203,7 +209,7 @@ func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Lab
 	return tx.SendBatch(ctx, &b).Close()
 }
 
-// findTargets opens the transaction, takes the models' label locks and
+// findTargets opens the transaction, takes the models' label locks (shared) and
 // looks up the predictions of keys, in one round trip; for unknown keys it
 // then takes the models' early-label locks exclusively, which waits for
 // prediction batches in flight, and looks again. The result holds nil for
@@ -218,7 +224,8 @@ func (s *Store) findTargets(ctx context.Context, tx *pgx.Conn, ids map[string]in
 	b.Queue(sqlBegin)
 	b.Queue(sqlNoHashJoin)
 	b.Queue(sqlNoMergeJoin)
-	b.Queue(sqlLockModels, s.keys.label, sortedModels(ids))
+	b.Queue(sqlNoJIT)
+	b.Queue(sqlLockModelsShare, s.keys.label, sortedModels(ids))
 	queueFind(&b, keys, all, targets)
 	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
 		return nil, err
@@ -311,7 +318,8 @@ func decideLabels(batch []store.Label, keys []labelKey, lineKey []int, targets [
 		}
 		before, had := current(tg.versions)
 		tg.versions = append(tg.versions, nv)
-		v.add(k.model, tg.bucket, tg.pkey, false, at, l.Actual)
+		tg.seq++
+		v.add(k.model, tg.bucket, tg.pkey, tg.seq, false, at, l.Actual)
 		after, _ := current(tg.versions)
 		switch {
 		case !had:
@@ -408,12 +416,14 @@ func readVersions(ctx context.Context, tx conn, targets []*target) error {
 		start := time.UnixMicro(k).UTC()
 		b.Queue(sqlFindVersions, d.models, d.buckets, d.pkeys, start, start.Add(day)).Query(func(rows pgx.Rows) error {
 			var (
-				i int64
-				v version
+				i   int64
+				seq int32
+				v   version
 			)
-			_, err := pgx.ForEachRow(rows, []any{&i, &v.implied, &v.at, &v.actual}, func() error {
+			_, err := pgx.ForEachRow(rows, []any{&i, &seq, &v.implied, &v.at, &v.actual}, func() error {
 				tg := d.tgs[i-1]
 				tg.versions = append(tg.versions, v)
+				tg.seq = max(tg.seq, seq)
 				return nil
 			})
 			return err

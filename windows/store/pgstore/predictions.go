@@ -201,6 +201,7 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 		early  bool
 	)
 	b.Queue(sqlBegin)
+	b.Queue(sqlNoJIT)
 	b.Queue(sqlLockModelsShare, s.keys.early, models)
 	b.Queue(sqlHasEarly, models).QueryRow(func(r pgx.Row) error { return r.Scan(&early) })
 	b.Queue(sqlKeyBlocks, (len(lines)+keyBlock-1)/keyBlock).Query(func(rows pgx.Rows) error {
@@ -374,6 +375,7 @@ func takeEarly(ctx context.Context, tx conn, fresh []*predLine, v *versionRows, 
 		actual string
 	}
 	current := map[*predLine]best{}
+	seqs := map[*predLine]int32{}
 	var (
 		k      key
 		at     time.Time
@@ -381,7 +383,8 @@ func takeEarly(ctx context.Context, tx conn, fresh []*predLine, v *versionRows, 
 	)
 	_, err = pgx.ForEachRow(rows, []any{&k.model, &k.id, &at, &actual}, func() error {
 		l := index[k]
-		v.add(l.model, l.bucket, l.pkey, false, at, actual)
+		seqs[l]++
+		v.add(l.model, l.bucket, l.pkey, seqs[l], false, at, actual)
 		if b, ok := current[l]; !ok || later(at, actual, b.at, b.actual) {
 			current[l] = best{at, actual}
 		}

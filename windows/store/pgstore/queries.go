@@ -94,7 +94,7 @@ JOIN predictions p ON p.model_id = u.m AND p.id = u.id`
 	// sqlFindVersions returns every label version of the given predictions
 	// of one day, [$4, $5): planning prunes label_versions to that day's
 	// partition.
-	sqlFindVersions = `SELECT u.i, v.implied, v.at, v.actual
+	sqlFindVersions = `SELECT u.i, v.seq, v.implied, v.at, v.actual
 FROM unnest($1::int[], $2::timestamptz[], $3::bigint[]) WITH ORDINALITY AS u(m, b, k, i)
 JOIN label_versions v ON v.model_id = u.m AND v.pkey = u.k AND v.bucket = u.b
 WHERE v.bucket >= $4 AND v.bucket < $5`
@@ -104,6 +104,10 @@ WHERE v.bucket >= $4 AND v.bucket < $5`
 	// statistics the planner may otherwise hash a whole day partition.
 	sqlNoHashJoin  = `SET LOCAL enable_hashjoin = off`
 	sqlNoMergeJoin = `SET LOCAL enable_mergejoin = off`
+	// sqlNoJIT keeps a batch's statements from being compiled: their cost
+	// estimates (thousands of index probes) pass jit_above_cost, but each
+	// runs once, and compiling takes longer than running it.
+	sqlNoJIT = `SET LOCAL jit = off`
 	// sqlAddEarly holds early labels and returns the versions that were new.
 	sqlAddEarly = `INSERT INTO early_labels (model_id, id, at, actual, received_at)
 SELECT u.m, u.id, u.at, u.actual, $5 FROM unnest($1::int[], $2::text[], $3::timestamptz[], $4::text[]) AS u(m, id, at, actual)
@@ -140,8 +144,8 @@ ORDER BY pc.bucket`
           SELECT 1 FROM label_versions v
           WHERE v.model_id = $1 AND v.pkey = p.pkey AND v.bucket = p.bucket AND v.bucket >= $3 AND v.bucket <= $4)
 ), ins AS (
-    INSERT INTO label_versions (model_id, bucket, pkey, implied, at, actual)
-    SELECT $1, bucket, pkey, true, at + $6::interval, $7::text FROM due
+    INSERT INTO label_versions (model_id, bucket, pkey, seq, implied, at, actual)
+    SELECT $1, bucket, pkey, 1, true, at + $6::interval, $7::text FROM due
 )
 SELECT bucket, segment, predicted, count(*) FROM due GROUP BY bucket, segment, predicted`
 	sqlExpireEarly = `DELETE FROM early_labels WHERE model_id = $1 AND received_at <= $2`

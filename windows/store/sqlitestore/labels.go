@@ -11,9 +11,15 @@ import (
 )
 
 // IngestLabels applies a batch of label versions in one transaction; see
-// store.Store. A label line costs one key lookup of its prediction and one
-// insert (of the version, or of the early label), plus an update of the
-// prediction's current label when it changes.
+// store.Store.
+//
+// The batch runs in set-based steps, each cut into chunks of up to a
+// hundred rows (see insertChunks): one read of the predictions the lines
+// name, with their current labels; one insert of the lines' versions,
+// whose RETURNING names the versions that were new; then each line is
+// decided in memory, in line order; last, one update of the current labels
+// that changed. A line whose prediction is unknown is held as an early
+// label, one statement per line.
 func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.Time) (store.LabelResult, error) {
 	res := store.LabelResult{Outcomes: make([]store.LabelOutcome, len(batch))}
 	if len(batch) == 0 {
@@ -24,90 +30,228 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 		return res, err
 	}
 	defer tx.Rollback()
-	w := labelWriter{
-		lookup: tx.stmt(ctx, sqlPredictionLabel), insertEarly: tx.stmt(ctx, sqlInsertEarly),
-		insertVersion: tx.stmt(ctx, sqlInsertVersion), setLabel: tx.stmt(ctx, sqlSetLabel),
-		acc: newAccumulator(), received: micros(now),
-	}
+	j := labelJoin{tx: tx, acc: newAccumulator(), received: micros(now), preds: map[predRef]*labelTarget{}}
+	refs := make([]predRef, len(batch))
 	for i, l := range batch {
-		id, err := w.acc.model(ctx, s, tx, l.Model)
+		id, err := j.acc.model(ctx, s, tx, l.Model)
 		if err != nil {
 			return res, fmt.Errorf("label line %d: %w", i+1, err)
 		}
-		if res.Outcomes[i], err = w.apply(ctx, id, l); err != nil {
-			return res, err
+		refs[i] = predRef{id, l.ID}
+	}
+	if err := j.lookup(ctx, refs); err != nil {
+		return res, err
+	}
+	fresh, err := j.insertVersions(ctx, batch, refs)
+	if err != nil {
+		return res, err
+	}
+	early := tx.stmt(ctx, sqlInsertEarly)
+	for i, l := range batch {
+		tg := j.preds[refs[i]]
+		if tg != nil {
+			res.Outcomes[i] = j.decide(tg, refs[i], l, fresh)
+			continue
+		}
+		n, err := affected(early.ExecContext(ctx, refs[i].model, l.ID, micros(l.At), l.Actual, j.received))
+		if err != nil {
+			return res, unavailable("insert early label", err)
+		}
+		res.Outcomes[i] = store.LabelEarly
+		if n == 0 {
+			res.Outcomes[i] = store.LabelDuplicate // this early version is already held
 		}
 	}
-	if err := w.acc.flush(ctx, tx); err != nil {
+	if err := j.setLabels(ctx); err != nil {
+		return res, err
+	}
+	if err := j.acc.flush(ctx, tx); err != nil {
 		return res, err
 	}
 	if err := tx.Commit(); err != nil {
 		return res, unavailable("commit label batch", err)
 	}
-	res.Changes = w.acc.changes()
+	res.Changes = j.acc.changes()
 	return res, nil
 }
 
-// labelWriter applies the lines of one label batch.
-type labelWriter struct {
-	lookup, insertEarly, insertVersion, setLabel *sql.Stmt
-	acc                                          *accumulator
-	received                                     int64
+// predRef names a prediction; versionRef one real label version of it.
+type (
+	predRef struct {
+		model int64
+		id    string
+	}
+	versionRef struct {
+		predRef
+		at     int64
+		actual string
+	}
+)
+
+// labelTarget is a known prediction a label batch touches: its join key
+// and its current label, as the batch has changed it so far.
+type labelTarget struct {
+	bucket             int64
+	segment, predicted string
+	label              sql.NullString
+	labelAt            int64
+	implied            bool
+	changed            bool // the current label was set by this batch
 }
 
-// apply applies one label line of model id and returns its outcome.
-func (w *labelWriter) apply(ctx context.Context, id int64, l store.Label) (store.LabelOutcome, error) {
-	at := micros(l.At)
-	var (
-		bucket             int64
-		segment, predicted string
-		cur                sql.NullString
-		curAt, curImplied  sql.NullInt64
-	)
-	err := w.lookup.QueryRowContext(ctx, id, l.ID).Scan(&bucket, &segment, &predicted, &cur, &curAt, &curImplied)
-	if errors.Is(err, sql.ErrNoRows) {
-		n, err := affected(w.insertEarly.ExecContext(ctx, id, l.ID, at, l.Actual, w.received))
+// labelJoin is one label batch's transaction and state.
+type labelJoin struct {
+	tx       *ingestTx
+	acc      *accumulator
+	received int64
+	preds    map[predRef]*labelTarget // the known predictions the batch names
+	args     []any
+}
+
+// lookup reads the known predictions among refs, a chunk of ids of one
+// model per statement.
+func (j *labelJoin) lookup(ctx context.Context, refs []predRef) error {
+	byModel := map[int64][]string{}
+	seen := make(map[predRef]bool, len(refs))
+	for _, r := range refs {
+		if !seen[r] {
+			seen[r] = true
+			byModel[r.model] = append(byModel[r.model], r.id)
+		}
+	}
+	for model, ids := range byModel {
+		for lo := 0; lo < len(ids); {
+			size := chunkFor(len(ids) - lo)
+			args := append(j.args[:0], model)
+			for _, id := range ids[lo : lo+size] {
+				args = append(args, id)
+			}
+			j.args = args
+			if err := j.readTargets(ctx, model, lookupLabelsSQL(size), args); err != nil {
+				return err
+			}
+			lo += size
+		}
+	}
+	return nil
+}
+
+// readTargets runs one lookup statement and records what it finds.
+func (j *labelJoin) readTargets(ctx context.Context, model int64, query string, args []any) error {
+	rows, err := j.tx.stmt(ctx, query).QueryContext(ctx, args...)
+	if err != nil {
+		return unavailable("look up predictions", err)
+	}
+	defer rows.Close()
+	for rows.Next() {
+		var (
+			id            string
+			tg            labelTarget
+			labelAt, impl sql.NullInt64
+		)
+		if err := rows.Scan(&id, &tg.bucket, &tg.segment, &tg.predicted, &tg.label, &labelAt, &impl); err != nil {
+			return unavailable("look up predictions", err)
+		}
+		tg.labelAt, tg.implied = labelAt.Int64, impl.Int64 == 1
+		j.preds[predRef{model, id}] = &tg
+	}
+	if err := rows.Err(); err != nil {
+		return unavailable("look up predictions", err)
+	}
+	return nil
+}
+
+// insertVersions inserts the versions of the lines whose prediction is
+// known and returns those that were new.
+func (j *labelJoin) insertVersions(ctx context.Context, batch []store.Label, refs []predRef) (map[versionRef]bool, error) {
+	var lines []int
+	for i := range batch {
+		if j.preds[refs[i]] != nil {
+			lines = append(lines, i)
+		}
+	}
+	fresh := make(map[versionRef]bool, len(lines))
+	for lo := 0; lo < len(lines); {
+		size := chunkFor(len(lines) - lo)
+		args := j.args[:0]
+		for _, i := range lines[lo : lo+size] {
+			args = append(args, refs[i].model, refs[i].id, micros(batch[i].At), batch[i].Actual, j.received)
+		}
+		j.args = args
+		rows, err := j.tx.stmt(ctx, insertVersionsSQL(size)).QueryContext(ctx, args...)
 		if err != nil {
-			return 0, unavailable("insert early label", err)
+			return nil, unavailable("insert label versions", err)
 		}
-		if n == 0 {
-			return store.LabelDuplicate, nil // this early version is already held
+		for rows.Next() {
+			var v versionRef
+			if err := rows.Scan(&v.model, &v.id, &v.at, &v.actual); err != nil {
+				rows.Close()
+				return nil, unavailable("insert label versions", err)
+			}
+			fresh[v] = true
 		}
-		return store.LabelEarly, nil
+		if err := errors.Join(rows.Err(), rows.Close()); err != nil {
+			return nil, unavailable("insert label versions", err)
+		}
+		lo += size
 	}
-	if err != nil {
-		return 0, unavailable("look up prediction", err)
+	return fresh, nil
+}
+
+// decide applies line l to its known prediction tg and returns its
+// outcome. A version is new only at its first line (fresh forgets it
+// then). A new real version becomes current when there is no version yet,
+// when the current one is implied (a real version always wins), or when it
+// ranks above the current real one.
+func (j *labelJoin) decide(tg *labelTarget, ref predRef, l store.Label, fresh map[versionRef]bool) store.LabelOutcome {
+	at := micros(l.At)
+	v := versionRef{ref, at, l.Actual}
+	if !fresh[v] {
+		return store.LabelDuplicate
 	}
-	n, err := affected(w.insertVersion.ExecContext(ctx, id, l.ID, 0, at, l.Actual, w.received))
-	if err != nil {
-		return 0, unavailable("insert label version", err)
+	delete(fresh, v)
+	if tg.label.Valid && !tg.implied && !later(at, l.Actual, tg.labelAt, tg.label.String) {
+		return store.LabelDuplicate
 	}
-	if n == 0 { // a known version was already ranked
-		return store.LabelDuplicate, nil
-	}
-	// A new real version becomes current when there is no version yet,
-	// when the current one is implied (a real version always wins), or
-	// when it ranks above the current real one.
-	becomes := !cur.Valid || curImplied.Int64 == 1 || later(at, l.Actual, curAt.Int64, cur.String)
-	if !becomes {
-		return store.LabelDuplicate, nil
-	}
-	if _, err := w.setLabel.ExecContext(ctx, l.Actual, at, 0, id, l.ID); err != nil {
-		return 0, unavailable("set current label", err)
-	}
+	old := tg.label
+	tg.label, tg.labelAt, tg.implied, tg.changed = sql.NullString{String: l.Actual, Valid: true}, at, false, true
 	switch {
-	case !cur.Valid:
-		w.acc.addCell(id, bucket, segment, l.Actual, predicted, 1)
-		w.acc.labeled(id, 1)
-		return store.LabelMatched, nil
-	case cur.String != l.Actual:
-		w.acc.addCell(id, bucket, segment, cur.String, predicted, -1)
-		w.acc.addCell(id, bucket, segment, l.Actual, predicted, 1)
-		return store.LabelCorrected, nil
+	case !old.Valid:
+		j.acc.addCell(ref.model, tg.bucket, tg.segment, l.Actual, tg.predicted, 1)
+		j.acc.labeled(ref.model, 1)
+		return store.LabelMatched
+	case old.String != l.Actual:
+		j.acc.addCell(ref.model, tg.bucket, tg.segment, old.String, tg.predicted, -1)
+		j.acc.addCell(ref.model, tg.bucket, tg.segment, l.Actual, tg.predicted, 1)
+		return store.LabelCorrected
 	}
 	// Same actual, newer version (or the real version confirming an
 	// implied one): no cell moves.
-	return store.LabelDuplicate, nil
+	return store.LabelDuplicate
+}
+
+// setLabels writes the current labels the batch changed.
+func (j *labelJoin) setLabels(ctx context.Context) error {
+	var changed []predRef
+	for r, tg := range j.preds {
+		if tg.changed {
+			changed = append(changed, r)
+		}
+	}
+	for lo := 0; lo < len(changed); {
+		size := chunkFor(len(changed) - lo)
+		args := j.args[:0]
+		for _, r := range changed[lo : lo+size] {
+			tg := j.preds[r]
+			args = append(args, r.model, r.id, tg.label.String, tg.labelAt)
+		}
+		j.args = args
+		if _, err := j.tx.stmt(ctx, setLabelsSQL(size)).ExecContext(ctx, args...); err != nil {
+			return unavailable("set current labels", err)
+		}
+		lo += size
+	}
+	return nil
 }
 
 // ApplyLabelTimeout gives due unlabeled predictions their implied version;

@@ -1,6 +1,9 @@
 package sqlitestore
 
-import "strings"
+import (
+	"strconv"
+	"strings"
+)
 
 // Every statement the store runs is one of these constants, except the
 // multi-row prediction insert, whose row list insertPredictionsSQL repeats
@@ -80,6 +83,51 @@ func insertPredictionsSQL(rows int) string {
 		}
 		b.WriteString("(?, ?, ?, ?, ?, ?, ?, ?)")
 	}
+	return b.String()
+}
+
+// lookupLabelsSQL reads the join keys and current labels of rows
+// predictions of model ?1, whose ids are ?2 on.
+func lookupLabelsSQL(rows int) string {
+	var b strings.Builder
+	b.WriteString("SELECT id, bucket, segment, predicted, label, label_at, label_implied FROM predictions\nWHERE model_id = ?1 AND id IN (")
+	for i := range rows {
+		if i > 0 {
+			b.WriteString(", ")
+		}
+		b.WriteString("?" + strconv.Itoa(i+2))
+	}
+	b.WriteString(")")
+	return b.String()
+}
+
+// insertVersionsSQL inserts rows real label versions (model, id, at,
+// actual, received) and returns those that were new.
+func insertVersionsSQL(rows int) string {
+	var b strings.Builder
+	b.WriteString("INSERT INTO label_versions (model_id, id, at, actual, received_at, implied)\nVALUES ")
+	for i := range rows {
+		if i > 0 {
+			b.WriteString(", ")
+		}
+		b.WriteString("(?, ?, ?, ?, ?, 0)")
+	}
+	b.WriteString("\nON CONFLICT (model_id, id, implied, at, actual) DO NOTHING\nRETURNING model_id, id, at, actual")
+	return b.String()
+}
+
+// setLabelsSQL sets the current label of rows predictions to a real
+// version, each row (model, id, label, label_at).
+func setLabelsSQL(rows int) string {
+	var b strings.Builder
+	b.WriteString("UPDATE predictions SET label = v.column3, label_at = v.column4, label_implied = 0\nFROM (VALUES ")
+	for i := range rows {
+		if i > 0 {
+			b.WriteString(", ")
+		}
+		b.WriteString("(?, ?, ?, ?)")
+	}
+	b.WriteString(") AS v\nWHERE predictions.model_id = v.column1 AND predictions.id = v.column2")
 	return b.String()
 }
 

@@ -176,6 +176,9 @@ func ingestQueries() []string {
 	for _, rows := range insertChunks() {
 		qs = append(qs, insertPredictionsSQL(rows))
 	}
+	for _, rows := range append(insertChunks(), 1) {
+		qs = append(qs, lookupLabelsSQL(rows), insertVersionsSQL(rows), setLabelsSQL(rows))
+	}
 	return qs
 }
 
