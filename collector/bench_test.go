@@ -88,7 +88,7 @@ func BenchmarkIngestSQLite(b *testing.B) {
 		data := benchLines(n, offset)
 		offset += n
 		b.StartTimer()
-		res, err := c.IngestPredictions(ctx, bytes.NewReader(data), BatchOptions{BatchLines: 1000})
+		res, err := c.Ingest(ctx, Predictions, bytes.NewReader(data), BatchOptions{BatchLines: 1000})
 		if err != nil || res.Accepted != n {
 			b.Fatalf("ingest: %+v %v", res.Accepted, err)
 		}

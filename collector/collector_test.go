@@ -173,10 +173,11 @@ func setup(tb testing.TB, be backend, edit func(*collector.Options)) *bundle {
 // reply is the response contract of the ingest endpoints; decoding refuses
 // unknown fields so that the shape is pinned.
 type reply struct {
-	Accepted   int        `json:"accepted"`
-	Duplicates int        `json:"duplicates"`
-	Rejected   []rejected `json:"rejected"`
-	Error      string     `json:"error"`
+	Accepted        int        `json:"accepted"`
+	Duplicates      int        `json:"duplicates"`
+	Rejected        []rejected `json:"rejected"`
+	RejectedOmitted int        `json:"rejected_omitted"`
+	Error           string     `json:"error"`
 }
 
 type rejected struct {
@@ -776,7 +777,7 @@ func testClassesFromAnotherReplica(t *testing.T, be backend) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	res, err := other.IngestPredictions(context.Background(), strings.NewReader(lines(
+	res, err := other.Ingest(context.Background(), collector.Predictions, strings.NewReader(lines(
 		`{"model":"ticket-route","id":"t-9","predicted":"refund"}`,
 		`{"model":"card-fraud","id":"c-9","predicted":"chargeback"}`,
 	)), collector.BatchOptions{})
@@ -820,7 +821,7 @@ func testIngestFile(t *testing.T, be backend) {
 		}
 	}
 	var progress []collector.Progress
-	res, err := b.col.IngestPredictions(context.Background(), strings.NewReader(sb.String()), collector.BatchOptions{
+	res, err := b.col.Ingest(context.Background(), collector.Predictions, strings.NewReader(sb.String()), collector.BatchOptions{
 		BatchLines: 3,
 		Progress:   func(p collector.Progress) { progress = append(progress, p) },
 	})
@@ -859,7 +860,7 @@ func testIngestFileStoreFailure(t *testing.T, be backend) {
 	for i := 1; i <= 5; i++ {
 		fmt.Fprintf(&sb, `{"model":"card-fraud","id":"g-%d","predicted":"legit"}`+"\n", i)
 	}
-	res, err := b.col.IngestPredictions(context.Background(), strings.NewReader(sb.String()), collector.BatchOptions{
+	res, err := b.col.Ingest(context.Background(), collector.Predictions, strings.NewReader(sb.String()), collector.BatchOptions{
 		BatchLines: 2,
 		Progress:   func(collector.Progress) { b.store.Close() },
 	})

@@ -20,8 +20,12 @@ type Format int
 
 // Formats.
 const (
+	// FormatAuto detects the format from the start of the body: a JSON
+	// array, or a first line that is not a complete JSON value but starts
+	// an object, is JSON; anything else is NDJSON.
+	FormatAuto Format = iota
 	// NDJSON is one JSON object per line.
-	NDJSON Format = iota
+	NDJSON
 	// JSON is one JSON object or an array of objects.
 	JSON
 )
@@ -59,11 +63,42 @@ type lineSource interface {
 }
 
 func newLineSource(r io.Reader, f Format, maxLine int) lineSource {
-	if f == JSON {
-		return newJSONSource(r, maxLine)
-	}
 	// The buffer holds a full line plus its "\r\n".
-	return &ndjsonSource{r: bufio.NewReaderSize(r, maxLine+2), max: maxLine}
+	br := bufio.NewReaderSize(r, maxLine+2)
+	if f == FormatAuto {
+		f = detectFormat(br)
+	}
+	if f == JSON {
+		return newJSONSource(br, maxLine)
+	}
+	return &ndjsonSource{r: br, max: maxLine}
+}
+
+// detectFormat tells JSON from NDJSON by the first line of br, which it
+// peeks without consuming (but for a byte order mark). Read errors are left
+// for the source to meet again.
+func detectFormat(br *bufio.Reader) Format {
+	if bom, _ := br.Peek(3); string(bom) == "\xef\xbb\xbf" {
+		_, _ = br.Discard(3)
+	}
+	head, _ := br.Peek(br.Size())
+	rest := bytes.TrimLeft(head, " \t\r\n")
+	if len(rest) == 0 {
+		return NDJSON
+	}
+	switch rest[0] {
+	case '[':
+		return JSON
+	case '{':
+		first, _, found := bytes.Cut(rest, []byte("\n"))
+		if !found && len(head) == br.Size() {
+			return NDJSON // an over-long first line: NDJSON reports it
+		}
+		if !json.Valid(bytes.TrimSpace(first)) {
+			return JSON // an object spread over several lines
+		}
+	}
+	return NDJSON
 }
 
 // ndjsonSource reads NDJSON line by line without holding more than one
@@ -124,8 +159,7 @@ type jsonSource struct {
 	raw     json.RawMessage
 }
 
-func newJSONSource(r io.Reader, maxLine int) *jsonSource {
-	br := bufio.NewReader(r)
+func newJSONSource(br *bufio.Reader, maxLine int) *jsonSource {
 	return &jsonSource{br: br, dec: json.NewDecoder(br), max: maxLine}
 }
 

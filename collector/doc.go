@@ -4,9 +4,13 @@
 // and runs the join's maintenance jobs (default labels after label_timeout,
 // early-label expiry, raw-row retention).
 //
-// The same path serves HTTP push (Register) and bulk backfill from files
-// (IngestPredictions, IngestLabels), so a line is judged the same way
-// whichever way it came in.
+// Every source feeds the same path (decode → validate → one store
+// transaction → the commit hook): Submit takes one body, as the HTTP
+// handlers (Register) and stream consumers have it; Ingest takes a file of
+// any size in transactions of BatchOptions.BatchLines lines, for backfills.
+// So a line is judged the same way whichever way it came in, and the body
+// is never re-encoded. classwatch_source_lines_total counts line outcomes by
+// source.
 //
 // # HTTP contract
 //
@@ -16,12 +20,14 @@
 // of objects. A gzip Content-Encoding is accepted; the size limits apply to
 // the decoded bytes as well. The body of every answer has the shape
 //
-//	{"accepted":N,"duplicates":N,"rejected":[{"line":L,"error":"..."}]}
+//	{"accepted":N,"duplicates":N,"rejected":[{"line":L,"error":"..."}],"rejected_omitted":N}
 //
 // plus an "error" string when the request as a whole was refused. Line
 // numbers are 1-based physical lines of an NDJSON body; blank lines are
-// skipped and not counted, so accepted + duplicates + len(rejected) equals
-// the number of non-blank lines. For a JSON array, line is the element's
+// skipped and not counted. At most the first MaxListedRejections rejected
+// lines are listed and the rest counted in rejected_omitted, so accepted +
+// duplicates + len(rejected) + rejected_omitted equals the number of
+// non-blank lines. For a JSON array, line is the element's
 // index + 1; a single JSON object is line 1. A bad line never sinks the
 // good lines of its batch; a body that is not valid JSON as a whole (a JSON
 // array with a syntax error) cannot be split into lines and is refused.
@@ -80,7 +86,10 @@
 // lines by outcome, plus implied (default labels applied) and expired
 // (early labels dropped) from the maintenance jobs, and rejected. A rejected
 // line whose model is not registered is counted with model="" so that
-// invalid input cannot create unbounded label values. The other metrics are
+// invalid input cannot create unbounded label values.
+// classwatch_source_lines_total{source,kind,result} counts the lines of
+// committed bodies by source (http, file, nats), kind and result (accepted,
+// duplicate, rejected). The other metrics are
 // named classwatch_collector_* and classwatch_last_prediction_timestamp_seconds.
 //
 // A Collector is safe for concurrent use by multiple goroutines.

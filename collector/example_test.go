@@ -63,5 +63,5 @@ func Example() {
 	out, _ := io.ReadAll(resp.Body)
 	fmt.Print(resp.StatusCode, " ", string(out))
 	// Output:
-	// 200 {"accepted":1,"duplicates":0,"rejected":[{"line":2,"error":"class \"chargeback\" is not registered for model \"card-fraud\""}]}
+	// 200 {"accepted":1,"duplicates":0,"rejected":[{"line":2,"error":"class \"chargeback\" is not registered for model \"card-fraud\""}],"rejected_omitted":0}
 }

@@ -2,7 +2,6 @@ package collector
 
 import (
 	"compress/gzip"
-	"context"
 	"crypto/sha256"
 	"crypto/subtle"
 	"encoding/json"
@@ -26,11 +25,11 @@ type response struct {
 
 // Register adds POST /v1/predictions and POST /v1/labels to mux.
 func (c *Collector) Register(mux *http.ServeMux) {
-	mux.HandleFunc("POST /v1/predictions", c.handler(predictions))
-	mux.HandleFunc("POST /v1/labels", c.handler(labels))
+	mux.HandleFunc("POST /v1/predictions", c.handler(Predictions))
+	mux.HandleFunc("POST /v1/labels", c.handler(Labels))
 }
 
-func (c *Collector) handler(k kind) http.HandlerFunc {
+func (c *Collector) handler(k Kind) http.HandlerFunc {
 	return func(w http.ResponseWriter, r *http.Request) {
 		start := time.Now()
 		code := c.serve(w, r, k)
@@ -39,7 +38,7 @@ func (c *Collector) handler(k kind) http.HandlerFunc {
 }
 
 // serve answers one ingest request and returns the status it sent.
-func (c *Collector) serve(w http.ResponseWriter, r *http.Request, k kind) int {
+func (c *Collector) serve(w http.ResponseWriter, r *http.Request, k Kind) int {
 	tok, ok := c.authorize(r)
 	if !ok {
 		w.Header().Set("WWW-Authenticate", `Bearer realm="classwatch"`)
@@ -61,24 +60,20 @@ func (c *Collector) serve(w http.ResponseWriter, r *http.Request, k kind) int {
 		return c.refuse(w, http.StatusBadRequest, err.Error())
 	}
 
-	if !c.acquire(r.Context()) {
-		if r.Context().Err() == nil {
-			c.metrics.queueTimeouts.WithLabelValues(k.String()).Inc()
-		}
-		c.retryAfter(w)
-		return c.refuse(w, http.StatusServiceUnavailable, "too many batches in flight; retry later")
-	}
-	res, err := c.ingest(r.Context(), newLineSource(body, format, c.limits.MaxLineBytes), ingestRun{kind: k, token: tok, longLineFatal: true})
-	c.release()
+	res, err := c.submit(r.Context(), k, body, SubmitOptions{Format: format, Source: "http"}, tok)
 
 	var (
 		maxBytes *http.MaxBytesError
+		tooBig   *TooLargeError
 		tooLong  *LineTooLongError
 		bodyErr  *BodyError
 		storeErr *StoreError
 	)
 	switch {
-	case errors.As(err, &maxBytes):
+	case errors.Is(err, ErrBusy):
+		c.retryAfter(w)
+		return c.refuse(w, http.StatusServiceUnavailable, "too many batches in flight; retry later")
+	case errors.As(err, &maxBytes), errors.As(err, &tooBig):
 		return c.refuse(w, http.StatusRequestEntityTooLarge, c.tooLarge())
 	case errors.As(err, &tooLong):
 		return c.refuse(w, http.StatusRequestEntityTooLarge, tooLong.Error())
@@ -221,30 +216,6 @@ func (cr *capReader) Read(p []byte) (int, error) {
 	n, err := cr.r.Read(p)
 	cr.left -= int64(n)
 	return n, err
-}
-
-// acquire takes an in-flight slot, waiting up to QueueWait.
-func (c *Collector) acquire(ctx context.Context) bool {
-	select {
-	case c.slots <- struct{}{}:
-	default:
-		t := time.NewTimer(c.limits.QueueWait)
-		defer t.Stop()
-		select {
-		case c.slots <- struct{}{}:
-		case <-t.C:
-			return false
-		case <-ctx.Done():
-			return false
-		}
-	}
-	c.metrics.inFlight.Inc()
-	return true
-}
-
-func (c *Collector) release() {
-	c.metrics.inFlight.Dec()
-	<-c.slots
 }
 
 func (c *Collector) retryAfter(w http.ResponseWriter) {

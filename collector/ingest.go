@@ -31,6 +31,21 @@ type Result struct {
 	Accepted   int         `json:"accepted"`
 	Duplicates int         `json:"duplicates"`
 	Rejected   []LineError `json:"rejected"`
+	// RejectedOmitted counts the rejected lines past the first
+	// MaxListedRejections, which Rejected does not list: accepted +
+	// duplicates + len(rejected) + rejected_omitted is the number of lines.
+	RejectedOmitted int `json:"rejected_omitted"`
+}
+
+// MaxListedRejections is how many rejected lines Submit lists in a Result.
+const MaxListedRejections = 1000
+
+// check refuses a Kind that is neither Predictions nor Labels.
+func (k Kind) check() error {
+	if k != Predictions && k != Labels {
+		return fmt.Errorf("unknown kind %d", int(k))
+	}
+	return nil
 }
 
 // Progress reports a bulk ingest after each committed batch.
@@ -43,7 +58,7 @@ type Progress struct {
 	Rejected   int
 }
 
-// BatchOptions tune IngestPredictions and IngestLabels.
+// BatchOptions tune Ingest.
 type BatchOptions struct {
 	Format Format
 	// BatchLines is the number of non-blank lines per transaction; zero
@@ -69,17 +84,29 @@ func (e *StoreError) Error() string {
 // Unwrap returns the store's error.
 func (e *StoreError) Unwrap() error { return e.Err }
 
-// kind is what an ingest carries.
-type kind int
+// storeError reports that b could not be committed; the cause always
+// wraps store.ErrUnavailable.
+func (b *batch) storeError(err error) *StoreError {
+	if !errors.Is(err, store.ErrUnavailable) {
+		err = fmt.Errorf("%w: %w", store.ErrUnavailable, err)
+	}
+	return &StoreError{FirstLine: b.first, LastLine: b.last, Err: err}
+}
 
+// Kind says what a body holds.
+type Kind int
+
+// Kinds.
 const (
-	predictions kind = iota
-	labels
+	// Predictions are prediction lines, as POST /v1/predictions takes.
+	Predictions Kind = iota
+	// Labels are label lines, as POST /v1/labels takes.
+	Labels
 )
 
 // String returns the endpoint label of the kind.
-func (k kind) String() string {
-	if k == labels {
+func (k Kind) String() string {
+	if k == Labels {
 		return "labels"
 	}
 	return "predictions"
@@ -87,15 +114,20 @@ func (k kind) String() string {
 
 // ingestRun is how one ingest treats its input.
 type ingestRun struct {
-	kind  kind
-	token *tokenHash // nil: every model allowed
+	kind Kind
+	// source is the source label of classwatch_source_lines_total.
+	source string
+	token  *tokenHash // nil: every model allowed
 	// batchLines is the number of lines per transaction; 0 is one
 	// transaction for the whole input.
 	batchLines int
 	// longLineFatal makes an over-long line end the ingest instead of
 	// being rejected alone.
 	longLineFatal bool
-	progress      func(Progress)
+	// listLimit caps the rejected lines listed in the Result; the rest are
+	// counted in RejectedOmitted. Zero lists every one.
+	listLimit int
+	progress  func(Progress)
 }
 
 // item is one parsed, valid-so-far line; its prediction or label is at
@@ -123,17 +155,17 @@ type batch struct {
 }
 
 // model returns the model of item i.
-func (b *batch) model(i int, k kind) string {
-	if k == labels {
+func (b *batch) model(i int, k Kind) string {
+	if k == Labels {
 		return b.labels[i].Model
 	}
 	return b.preds[i].Model
 }
 
 // move copies item src over item dst, to filter the items in place.
-func (b *batch) move(dst, src int, k kind) {
+func (b *batch) move(dst, src int, k Kind) {
 	b.items[dst] = b.items[src]
-	if k == labels {
+	if k == Labels {
 		b.labels[dst] = b.labels[src]
 	} else {
 		b.preds[dst] = b.preds[src]
@@ -141,9 +173,9 @@ func (b *batch) move(dst, src int, k kind) {
 }
 
 // truncate keeps the first n items.
-func (b *batch) truncate(n int, k kind) {
+func (b *batch) truncate(n int, k Kind) {
 	b.items = b.items[:n]
-	if k == labels {
+	if k == Labels {
 		b.labels = b.labels[:n]
 	} else {
 		b.preds = b.preds[:n]
@@ -155,22 +187,17 @@ func (b *batch) reject(line int, model, reason string, err error) {
 	b.rejectedModels = append(b.rejectedModels, model)
 }
 
-// IngestPredictions reads predictions from r and stores them in
-// transactions of opts.BatchLines lines, judging each line as the HTTP
-// endpoint does (no token applies). An over-long line is rejected alone.
-// On a store failure it returns what the committed batches did together
-// with a *StoreError naming the failed batch's lines.
-func (c *Collector) IngestPredictions(ctx context.Context, r io.Reader, opts BatchOptions) (Result, error) {
-	return c.ingestFile(ctx, r, opts, predictions)
-}
-
-// IngestLabels is IngestPredictions for labels.
-func (c *Collector) IngestLabels(ctx context.Context, r io.Reader, opts BatchOptions) (Result, error) {
-	return c.ingestFile(ctx, r, opts, labels)
-}
-
-func (c *Collector) ingestFile(ctx context.Context, r io.Reader, opts BatchOptions, k kind) (Result, error) {
-	run := ingestRun{kind: k, batchLines: opts.BatchLines, progress: opts.Progress}
+// Ingest reads a file of kind k from r and stores it in transactions of
+// opts.BatchLines lines, judging each line as Submit does (no token
+// applies); it is Submit for inputs too large for one transaction, such as
+// a backfill. An over-long line is rejected alone. On a store failure it
+// returns what the committed batches did together with a *StoreError
+// naming the failed batch's lines.
+func (c *Collector) Ingest(ctx context.Context, k Kind, r io.Reader, opts BatchOptions) (Result, error) {
+	if err := k.check(); err != nil {
+		return Result{Rejected: []LineError{}}, err
+	}
+	run := ingestRun{kind: k, source: "file", batchLines: opts.BatchLines, progress: opts.Progress}
 	if run.batchLines <= 0 {
 		run.batchLines = DefaultBatchLines
 	}
@@ -241,8 +268,8 @@ func (b *batch) reset() {
 }
 
 // parse decodes one line into the batch, as an item or a rejection.
-func (c *Collector) parse(b *batch, k kind, line int, data []byte, now time.Time) {
-	if k == labels {
+func (c *Collector) parse(b *batch, k Kind, line int, data []byte, now time.Time) {
+	if k == Labels {
 		l, err := parseLabel(data, now, c.limits.MaxFuture)
 		if err != nil {
 			b.reject(line, l.Model, reasonInvalid, err)
@@ -284,7 +311,7 @@ func (b *batch) classList(first string, scores map[string]float64) []string {
 // resolve checks each item's token permission, model and classes,
 // registering what the policies allow, and fills in prediction buckets.
 // Rejected items leave b.items. Only a store failure is returned.
-func (c *Collector) resolve(ctx context.Context, b *batch, k kind, tok *tokenHash) error {
+func (c *Collector) resolve(ctx context.Context, b *batch, k Kind, tok *tokenHash) error {
 	var order []string
 	needs := map[string][]string{}
 	needed := map[string]map[string]bool{}
@@ -346,7 +373,7 @@ func (c *Collector) resolve(ctx context.Context, b *batch, k kind, tok *tokenHas
 			b.reject(it.line, m, reason, err)
 			continue
 		}
-		if k == predictions {
+		if k == Predictions {
 			p := &b.preds[i]
 			p.Bucket = windows.BucketStart(p.At, st.policy.Bucket)
 		}
@@ -414,13 +441,14 @@ func (c *Collector) check(st *modelState, classes []string, model string, refuse
 // flush resolves and commits one batch and adds its outcome to res.
 func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time.Time, res *Result) error {
 	if err := c.resolve(ctx, b, run.kind, run.token); err != nil {
-		return &StoreError{FirstLine: b.first, LastLine: b.last, Err: err}
+		return b.storeError(err)
 	}
 	var latest map[string]time.Time
 	endpoint := run.kind.String()
+	accepted, duplicates := res.Accepted, res.Duplicates
 	if len(b.items) > 0 {
 		err := c.commit(func() (store.Changes, map[string]time.Time, error) {
-			if run.kind == labels {
+			if run.kind == Labels {
 				ch, err := c.commitLabels(ctx, b, now, res)
 				return ch, nil, err
 			}
@@ -432,7 +460,7 @@ func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time
 			if ctx.Err() == nil {
 				c.metrics.storeErrors.WithLabelValues("ingest_" + endpoint).Inc()
 			}
-			return &StoreError{FirstLine: b.first, LastLine: b.last, Err: err}
+			return b.storeError(err)
 		}
 	}
 
@@ -442,17 +470,23 @@ func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time
 		if c.state(m) == nil {
 			m = "" // unregistered names must not become label values
 		}
-		if run.kind == labels {
+		if run.kind == Labels {
 			c.metrics.labelsReceived.WithLabelValues(m, resultRejected).Inc()
 		}
 	}
+	c.metrics.sourceLines(run.source, endpoint, res.Accepted-accepted, res.Duplicates-duplicates, len(b.rejected))
 	slices.SortFunc(b.rejected, func(x, y LineError) int { return x.Line - y.Line })
-	res.Rejected = append(res.Rejected, b.rejected...)
+	listed := b.rejected
+	if run.listLimit > 0 {
+		listed = listed[:min(len(listed), max(run.listLimit-len(res.Rejected), 0))]
+	}
+	res.Rejected = append(res.Rejected, listed...)
+	res.RejectedOmitted += len(b.rejected) - len(listed)
 	c.metrics.batchLines.WithLabelValues(endpoint).Observe(float64(b.lines))
 
 	c.noteLatest(latest)
 	if run.progress != nil {
-		run.progress(Progress{Line: b.last, Accepted: res.Accepted, Duplicates: res.Duplicates, Rejected: len(res.Rejected)})
+		run.progress(Progress{Line: b.last, Accepted: res.Accepted, Duplicates: res.Duplicates, Rejected: len(res.Rejected) + res.RejectedOmitted})
 	}
 	return nil
 }

@@ -23,7 +23,7 @@ func testMaintain(t *testing.T, be backend) {
 		o.Models[0].Retention = 72 * time.Hour
 	})
 	ctx := context.Background()
-	if _, err := b.col.IngestPredictions(ctx, strings.NewReader(lines(
+	if _, err := b.col.Ingest(ctx, collector.Predictions, strings.NewReader(lines(
 		`{"model":"card-fraud","id":"a","at":"2026-03-01T12:00:00Z","predicted":"fraud"}`,
 		`{"model":"card-fraud","id":"b","at":"2026-03-01T12:05:00Z","predicted":"fraud"}`,
 	)), collector.BatchOptions{}); err != nil {
@@ -31,7 +31,7 @@ func testMaintain(t *testing.T, be backend) {
 	}
 	// b gets a real label; "ghost" waits as an early label, received at
 	// the collector's clock, 2026-03-01T12:30Z.
-	if _, err := b.col.IngestLabels(ctx, strings.NewReader(lines(
+	if _, err := b.col.Ingest(ctx, collector.Labels, strings.NewReader(lines(
 		`{"model":"card-fraud","id":"b","actual":"fraud","at":"2026-03-01T12:20:00Z"}`,
 		`{"model":"card-fraud","id":"ghost","actual":"fraud","at":"2026-03-01T12:20:00Z"}`,
 	)), collector.BatchOptions{}); err != nil {

@@ -41,6 +41,7 @@ type metrics struct {
 	lastPrediction      *prometheus.GaugeVec
 	purged              *prometheus.CounterVec
 	maintenanceSuccess  prometheus.Gauge
+	sourceLinesTotal    *prometheus.CounterVec
 }
 
 func newMetrics(reg prometheus.Registerer) (m *metrics, err error) {
@@ -99,6 +100,10 @@ func newMetrics(reg prometheus.Registerer) (m *metrics, err error) {
 			Name: "classwatch_collector_purged_predictions_total",
 			Help: "Raw predictions dropped by retention, per model.",
 		}, []string{"model"}),
+		sourceLinesTotal: f.NewCounterVec(prometheus.CounterOpts{
+			Name: "classwatch_source_lines_total",
+			Help: "Input lines of committed batches by source (http, file, nats), kind (predictions, labels) and result (accepted, duplicate, rejected).",
+		}, []string{"source", "kind", "result"}),
 		maintenanceSuccess: f.NewGauge(prometheus.GaugeOpts{
 			Name: "classwatch_collector_maintenance_last_success_timestamp_seconds",
 			Help: "When the maintenance jobs last completed without error, in Unix seconds.",
@@ -117,5 +122,24 @@ func (m *metrics) initModel(model string) {
 	}
 	for _, r := range results {
 		m.labelsReceived.WithLabelValues(model, r)
+	}
+}
+
+// Results of classwatch_source_lines_total.
+const (
+	lineAccepted  = "accepted"
+	lineDuplicate = "duplicate"
+	lineRejected  = "rejected"
+)
+
+// sourceLines counts one committed batch's line outcomes for its source.
+func (m *metrics) sourceLines(source, kind string, accepted, duplicates, rejected int) {
+	for _, o := range [...]struct {
+		result string
+		n      int
+	}{{lineAccepted, accepted}, {lineDuplicate, duplicates}, {lineRejected, rejected}} {
+		if o.n > 0 {
+			m.sourceLinesTotal.WithLabelValues(source, kind, o.result).Add(float64(o.n))
+		}
 	}
 }

@@ -131,7 +131,7 @@ func TestBatchReset(t *testing.T) {
 		b.preds = append(b.preds, store.Prediction{Model: "dock-01", ID: fmt.Sprint(i)})
 		b.items = append(b.items, item{line: i + 1, classes: b.classList("dented", map[string]float64{"wet": 0.1, "intact": 0.2})})
 	}
-	b.truncate(10, predictions)
+	b.truncate(10, Predictions)
 	b.reset()
 	if len(b.items) != 0 || len(b.preds) != 0 || len(b.classBuf) != 0 || b.lines != 0 {
 		t.Fatalf("reset batch holds %d items, %d predictions, %d classes, %d lines", len(b.items), len(b.preds), len(b.classBuf), b.lines)

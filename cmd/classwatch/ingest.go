@@ -57,21 +57,22 @@ func runIngest(ctx context.Context, args []string, stdout, stderr io.Writer) err
 				file, p.Line, p.Accepted, p.Duplicates, p.Rejected)
 		}
 	}
+	bopts.Format = collector.NDJSON
 	if strings.HasSuffix(file, ".json") {
 		bopts.Format = collector.JSON
 	}
-	ingest := col.IngestPredictions
+	k := collector.Predictions
 	if kind == "labels" {
-		ingest = col.IngestLabels
+		k = collector.Labels
 	}
-	res, err := ingest(ctx, f, bopts)
+	res, err := col.Ingest(ctx, k, f, bopts)
 	if !*quiet {
 		fmt.Fprintln(stderr)
 	}
 	for _, r := range res.Rejected {
 		fmt.Fprintf(stdout, "%s:%d: %s\n", file, r.Line, r.Error)
 	}
-	fmt.Fprintf(stdout, "%s: %d accepted, %d duplicates, %d rejected\n", file, res.Accepted, res.Duplicates, len(res.Rejected))
+	fmt.Fprintf(stdout, "%s: %d accepted, %d duplicates, %d rejected\n", file, res.Accepted, res.Duplicates, len(res.Rejected)+res.RejectedOmitted)
 	var se *collector.StoreError
 	if errors.As(err, &se) {
 		return fmt.Errorf("ingest: lines %d-%d were not stored (%w); everything before line %d is committed, resume from there",
