@@ -17,7 +17,7 @@ import (
 const overviewContent = `{{define "content"}}
 <h1>On call</h1>
 {{if .Error}}<p class="caution">{{.Error}}</p>{{end}}
-<h2>Alerts {{if .Alerts}}<span class="tag firing">{{.Firing}} firing</span> <span class="tag pending">{{.Pending}} pending</span>{{end}}</h2>
+<h2>Alerts {{if .Firing}}<span class="tag firing">{{.Firing}} firing</span>{{end}} {{if .Pending}}<span class="tag pending">{{.Pending}} pending</span>{{end}}</h2>
 {{if .Alerts}}<ul class="alerts">
 {{range .Alerts}}<li class="{{.State}}"><span><span class="tag {{.State}}">{{.State}}</span></span>
 <span><b>{{.Rule}}</b> on <a href="{{.Link}}">{{.Model}}</a> · {{.Subject}}{{if .Window}} · window {{.Window}}{{end}}<br>

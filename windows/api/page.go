@@ -48,7 +48,8 @@ td.wrap { white-space:normal; }
 .alerts li.pending { border-left-style:dashed; }
 .models td.model { font-weight:600; }
 .models tr.first td { border-top:1.5px solid var(--ink); }
-.worst span { margin-right:.7rem; }
+td.worst { white-space:normal; min-width:22rem; }
+.worst > span { white-space:nowrap; margin-right:.7rem; display:inline-block; }
 .grid { display:flex; flex-wrap:wrap; gap:.6rem 1.6rem; align-items:flex-start; }
 .grid figure { margin:0; }
 figcaption { font-size:.85rem; color:var(--muted); margin-bottom:.2rem; }
@@ -58,7 +59,6 @@ figcaption { font-size:.85rem; color:var(--muted); margin-bottom:.2rem; }
 .cw-chart .cw-cell { font-size:12px; font-weight:600; }
 .cw-chart .cw-small { font-size:9.5px; }
 .cw-chart .cw-muted { fill:var(--muted); }
-.cw-chart text.cw-cell { fill:inherit; }
 form.seg { display:inline-flex; gap:.4rem; align-items:center; }
 form.seg input { font:inherit; padding:.1rem .3rem; border:1px solid var(--rule); }
 form.seg button { font:inherit; border:1px solid var(--teal); background:#fff; color:var(--teal); padding:.05rem .6rem; }
@@ -73,6 +73,7 @@ const layoutHTML = `{{define "layout"}}<!doctype html>
 <meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <title>{{.Title}} · classwatch</title>
+<link rel="icon" href="data:,">
 <style>{{css}}</style>
 </head>
 <body>

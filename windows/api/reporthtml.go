@@ -50,6 +50,7 @@ const reportHTML = `<!doctype html>
 <meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <title>Audit report · {{.A.Model}} · {{rfc .A.From}} to {{rfc .A.To}}</title>
+<link rel="icon" href="data:,">
 <style>{{css}}{{printcss}}</style>
 </head>
 <body><div class="doc">

@@ -102,7 +102,9 @@ func drawCell(s *svg, h Heatmap, i, j int, rowTotal, max int64, x, y, cs float64
 		if rowTotal > 0 {
 			shade = float64(v) / float64(rowTotal)
 			share = strconv.FormatFloat(shade, 'f', 4, 64)
-			label = strconv.FormatFloat(shade, 'f', 2, 64)
+			if v > 0 {
+				label = strconv.FormatFloat(shade, 'f', 2, 64)
+			}
 		} else {
 			label = "–"
 		}
@@ -127,7 +129,7 @@ func drawCell(s *svg, h Heatmap, i, j int, rowTotal, max int64, x, y, cs float64
 	if len(label) > 4 && cs < 40 {
 		class = "cw-cell cw-small"
 	}
-	s.printf(`<text x="%s" y="%s" text-anchor="middle" class="%s" fill="%s">%s</text></g>`,
+	s.printf(`<text x="%s" y="%s" text-anchor="middle" class="%s" style="fill:%s">%s</text></g>`,
 		f1(x+cs/2), f1(y+cs/2+4), class, textOn(shade), esc(label))
 }
 

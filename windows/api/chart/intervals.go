@@ -116,5 +116,8 @@ func clamp01(v float64) float64 {
 
 // trimRatio prints a tick value: 0, .25, .5, .75, 1.
 func trimRatio(v float64) string {
+	if v == 0 {
+		return "0"
+	}
 	return strings.TrimPrefix(strconv.FormatFloat(v, 'f', -1, 64), "0")
 }
