@@ -33,6 +33,10 @@ const (
 	// OutcomeUnknown: too little data to judge (fewer than the rule's
 	// minimum count, an empty window); the instance keeps its state.
 	OutcomeUnknown Outcome = "unknown"
+	// OutcomeHold: the figure lies between the levels that fire and that
+	// resolve (a cusum statistic above 0 but below its threshold); the
+	// instance keeps its state.
+	OutcomeHold Outcome = "hold"
 )
 
 // Result holds the figures one evaluation produced for one instance. Absent
@@ -44,8 +48,9 @@ type Result struct {
 	// From and To bound the buckets of the current period.
 	From time.Time `json:"from,omitzero"`
 	To   time.Time `json:"to,omitzero"`
-	// Value is the current figure: the metric, the proportion compared,
-	// the PSI of a shift rule, or the seconds without a prediction.
+	// Value is the current figure: the metric, the proportion compared
+	// (for cusum, over its matured buckets), the PSI of a shift rule, or
+	// the seconds without a prediction.
 	Value *float64 `json:"value"`
 	// Count is the figure's denominator (labeled examples of the class for
 	// recall, all predictions for label coverage, the period's total for a
@@ -53,8 +58,8 @@ type Result struct {
 	Count int64 `json:"count"`
 	// Interval bounds Value at the rule's confidence.
 	Interval *[2]float64 `json:"interval,omitempty"`
-	// Threshold is the floor, ceiling, PSI threshold or no_traffic limit
-	// (seconds).
+	// Threshold is the floor, ceiling, PSI threshold, no_traffic limit
+	// (seconds) or the cusum threshold (nats).
 	Threshold *float64 `json:"threshold,omitempty"`
 	// Confidence is the level intervals and tests used.
 	Confidence float64 `json:"confidence,omitempty"`
@@ -63,7 +68,7 @@ type Result struct {
 	// instances of the model.
 	PValue *float64 `json:"p_value,omitempty"`
 	// Statistic and DF are the shift test's statistic and degrees of
-	// freedom.
+	// freedom; for cusum, Statistic is the CUSUM in nats.
 	Statistic *float64 `json:"statistic,omitempty"`
 	DF        *int     `json:"df,omitempty"`
 	// PSI is the shift rule's population stability index.
@@ -75,6 +80,14 @@ type Result struct {
 	Reference          *Figures    `json:"reference,omitempty"`
 	// LastPrediction is the latest prediction time of a no_traffic rule.
 	LastPrediction *time.Time `json:"last_prediction,omitempty"`
+	// Expected and Alternative are a cusum rule's in-control proportion p0
+	// and the shifted one p1 it is tuned to; TrialsPerHour the observed
+	// trial rate its threshold follows from; RunStart the first bucket of
+	// the statistic's current excursion above 0.
+	Expected      *float64   `json:"expected,omitempty"`
+	Alternative   *float64   `json:"alternative,omitempty"`
+	TrialsPerHour *float64   `json:"trials_per_hour,omitempty"`
+	RunStart      *time.Time `json:"run_start,omitempty"`
 }
 
 // Figures are a reference period's bounds and figure.

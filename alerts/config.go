@@ -17,7 +17,7 @@ import (
 // only some kinds take. A key that exists but does not apply to the rule's
 // kind is an error, since it would silently do nothing.
 var (
-	ruleKeys = []string{"name", "kind", "model", "window", "schedule", "severity", "labels",
+	ruleKeys = []string{"name", "kind", "model", "schedule", "severity", "labels",
 		"annotations", "fire_after", "resolve_after", "confidence", "min_count"}
 	referenceKeys = []string{"window", "from", "to"}
 	pairKeys      = []string{"actual", "predicted"}
@@ -52,6 +52,11 @@ type ruleYAML struct {
 	PSIThreshold *float64 `yaml:"psi_threshold"`
 	Pairs        []Pair   `yaml:"pairs"`
 	QuietFor     string   `yaml:"quiet_for"`
+	Direction    string   `yaml:"direction"`
+	Lag          string   `yaml:"lag"`
+	Expected     *float64 `yaml:"expected"`
+	Shift        float64  `yaml:"shift"`
+	FalseAlarm   string   `yaml:"false_alarm_every"`
 }
 
 // ParseRules reads the alerts section of the daemon's config, a sequence of
@@ -132,6 +137,9 @@ func (p *ruleParser) checkKeys() {
 	n := p.n
 	spec, known := kinds[Kind(stringValue(n, "kind"))]
 	allowed := append(slices.Clone(ruleKeys), spec.keys...)
+	if spec.window {
+		allowed = append(allowed, "window")
+	}
 	for _, k := range keys(n) {
 		if slices.Contains(allowed, k.Value) {
 			continue
@@ -161,7 +169,7 @@ func (p *ruleParser) rule(y *ruleYAML) Rule {
 		Name: y.Name, Kind: Kind(y.Kind), Model: y.Model, Window: y.Window,
 		Schedule: y.Schedule, Severity: y.Severity, Labels: y.Labels, Annotations: y.Annotations,
 		Metric: y.Metric, Classes: y.Classes, Interval: y.Interval, Margin: y.Margin,
-		Test: y.Test, Pairs: y.Pairs,
+		Test: y.Test, Pairs: y.Pairs, Direction: y.Direction, Shift: y.Shift,
 	}
 	// Settings whose zero means "default" in Go refuse an explicit zero, so
 	// that "fire_after: 0" is not quietly read as 1.
@@ -186,6 +194,11 @@ func (p *ruleParser) rule(y *ruleYAML) Rule {
 		}
 	}
 	r.QuietFor = p.duration("quiet_for", y.QuietFor)
+	r.Lag = p.duration("lag", y.Lag)
+	r.FalseAlarmEvery = p.duration("false_alarm_every", y.FalseAlarm)
+	if y.Expected != nil {
+		r.Expected = *y.Expected
+	}
 	if y.Reference != nil {
 		r.Reference = p.reference(y.Reference.Window, y.Reference.From, y.Reference.To)
 	}

@@ -30,6 +30,9 @@
 //     which needs no labels) distribution against the reference's, by a
 //     chi-square or G test of homogeneity (sparse classes pooled) and/or
 //     the population stability index.
+//   - cusum: a Bernoulli CUSUM over the matured buckets of a per-class
+//     proportion, tuned to a wanted mean time between false alarms (see
+//     "CUSUM" below).
 //   - no_traffic: no prediction from a model has arrived for a duration
 //     (the producer or its pipeline is probably broken).
 //
@@ -43,17 +46,20 @@
 // The daemon's config holds the rules under "alerts:" and the receivers
 // under "notifiers:" (ParseRules, ParseNotifiers; "classwatch rules check
 // F" runs CheckFile). Every rule takes name, kind, model (a name or "all"),
-// window (not no_traffic), and optionally schedule (cron, UTC; default
-// every minute), severity (critical, warning or info; default warning),
-// labels, annotations (text/template
-// over TemplateData), fire_after, resolve_after (default 1), confidence
-// (default: the daemon's) and min_count (default 30). By kind:
+// window (except cusum and no_traffic), and optionally schedule (cron,
+// UTC; default every minute), severity (critical, warning or info; default
+// warning), labels, annotations (text/template over TemplateData),
+// fire_after, resolve_after (default 1), confidence (default: the
+// daemon's) and min_count (default 30). By kind:
 //
 //	floor, ceiling    metric, threshold, classes, interval (wilson, jeffreys, none)
 //	drop              reference, metric (recall, precision, specificity), classes, margin
 //	confusion_rise    reference, pairs [{actual, predicted}], margin
 //	prevalence_shift  reference, test (chi_square, g_test, none), psi_threshold
 //	output_shift      reference, test, psi_threshold
+//	cusum             metric (recall, precision, specificity, prevalence; default recall),
+//	                  classes, direction (down, up; default down), lag,
+//	                  reference or expected, shift, false_alarm_every
 //	no_traffic        quiet_for
 //
 // A reference is {window: NAME} or {from: RFC 3339, to: RFC 3339}. For
@@ -78,6 +84,81 @@
 // doubling), queue_size (1000) and, for alertmanager, resend_interval (1m).
 // Unknown keys, keys that do not apply to a rule's kind, and bad values are
 // errors naming the key and its line.
+//
+// # CUSUM
+//
+// A rule evaluated every hour at a 5% level pages far more often over a
+// month than "5%" suggests. A cusum rule states the on-call promise
+// directly, as a mean time between false alarms:
+//
+//	- name: fraud-recall-cusum
+//	  kind: cusum
+//	  model: card-screen
+//	  metric: recall                     # recall, precision, specificity or prevalence
+//	  classes: [fraud]
+//	  direction: down                    # down (default) or up
+//	  lag: 72h                           # a bucket counts once it is this old
+//	  reference: {window: 30d-matured}   # in-control p0 from this period; or expected: 0.9
+//	  shift: 0.2                         # p1 = p0 − shift (down) or p0 + shift (up)
+//	  false_alarm_every: 90d             # wanted mean time between false alarms
+//
+// At each evaluation, for each class, the rule reads the stored cells of
+// the matured buckets, those whose start lies in [W − lag − 7d, W − lag)
+// where W is the model's watermark (README.md "Join semantics and
+// windows"), and turns each bucket into trials and successes of the
+// metric (README.md "Metric definitions": for recall of k, the labeled
+// examples of actual k and those predicted k). It then runs Page's (1954)
+// CUSUM from 0 over the buckets in prediction-time order, each bucket's
+// trials entering at once:
+//
+//	S ← max(0, S + bad·ln(q1/q0) + good·ln((1−q1)/(1−q0)))
+//
+// where bad counts the outcomes p1 makes likelier (failures when watching
+// for a drop, successes when watching for a rise), good the others, and
+// q0, q1 the probability of a bad outcome under p0 and p1. The two weights
+// are rounded to integer multiples of one step (their ratio within 1%),
+// and that integer chart is the one run and reported (DesignCUSUM).
+//
+// The threshold h follows from false_alarm_every and the observed trial
+// rate: with λ trials an hour over the chart's buckets, h is the smallest
+// threshold whose in-control average run length, trial by trial, is at
+// least λ × false_alarm_every trials. The run length is computed exactly
+// for the integer chart by the Markov chain of Brook & Evans (1972): the
+// statistic's values below h are the transient states, and the run
+// lengths solve (I − R)·L = 1. Entering a bucket's trials at once, and
+// looking only at bucket ends, never raises the statistic above the
+// trial-by-trial chart's, and starting from 0 a week back never raises it
+// above a chart started earlier, so false alarms come at most as often as
+// promised (the tests check the computation against a worked example,
+// numpy and simulation). The statistic is recomputed from the stored
+// cells at each evaluation: a restart, another replica or a backtest with
+// only the cells known at t get the same value.
+//
+// p0 is the metric over the reference period (a window or a fixed range),
+// leaving out the buckets the chart itself reads, so that a drop does not
+// drag its own baseline down; a reference that is only those buckets has
+// no data, and the outcome is unknown. A reference without a single
+// failure (or success) is read as having half of one. Or p0 is given as
+// expected. Below min_count trials in the reference the outcome is
+// unknown.
+//
+// The rule fires when the statistic reaches h and resolves when it is back
+// at 0; between the two the outcome is "hold", which keeps the state. The
+// result shows the statistic and h (in nats), p0 ("expected"), p1
+// ("alternative"), the proportion over the chart's buckets, the trial rate
+// and where the current rise of the statistic began ("run_start").
+//
+// The lag is a trade-off. Labels do not arrive independently of the
+// outcome: a fraud the model caught is confirmed by a review within hours,
+// while a fraud it missed surfaces as a chargeback weeks later. In fresh
+// buckets the caught frauds are therefore over-represented and recall
+// looks better than it is; a drop shows only once the late labels are in.
+// A short lag sees a drop sooner but reads those biased, rising figures; a
+// lag past the bulk of the label delay reads settled figures but adds the
+// whole lag to every detection. Set lag to the time by which nearly all of
+// a bucket's labels have arrived (README.md "Join semantics and windows":
+// label_timeout bounds it); detection delay is then the lag plus the time
+// the chart needs once the drop has matured.
 //
 // Each kind is one entry of the kinds table (kinds.go): its keys, its
 // defaults, and a constructor that checks the rule's settings and returns

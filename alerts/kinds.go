@@ -33,6 +33,9 @@ type Source interface {
 	// Counts returns the per-bucket cells and predicted-class counts of a
 	// range of buckets of one model.
 	Counts(ctx context.Context, q store.Query) (store.Counts, error)
+	// Watermark returns a model's watermark as its windows see it (README
+	// "Join semantics and windows"); false when the model is unknown.
+	Watermark(model string) (time.Time, bool)
 }
 
 // Input is one evaluation of one rule for one model.
@@ -68,7 +71,8 @@ type kindSpec struct {
 	// required those of them a config must set even where Go's zero
 	// value would pass the kind's checks.
 	keys, required []string
-	// window: the kind reads a configured window (the rule's window key);
+	// window: the kind reads a configured window (and takes the window
+	// key);
 	// reference: it compares with a reference period.
 	window, reference bool
 	// defaults fills in the kind's settings left out (may be nil).
@@ -110,6 +114,10 @@ var kinds = map[Kind]kindSpec{
 		keys: shiftKeys, window: true, reference: true,
 		defaults: shiftDefaults, build: newShift(false), describe: describeShift("predicted-class mix"),
 	},
+	KindCUSUM: {
+		keys:     cusumKeys,
+		defaults: cusumDefaults, build: newCUSUM, describe: describeCUSUM,
+	},
 	KindNoTraffic: {
 		keys:  []string{"quiet_for"},
 		build: newNoTraffic, describe: describeNoTraffic,
@@ -129,6 +137,9 @@ func kindNames() string {
 
 // isKindKey reports whether k is a setting of some kind.
 func isKindKey(k string) bool {
+	if k == "window" {
+		return true
+	}
 	for _, s := range kinds {
 		if slices.Contains(s.keys, k) {
 			return true

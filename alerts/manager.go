@@ -43,6 +43,9 @@ type Options struct {
 	Store Store
 	// View reads the current windows.
 	View ViewFunc
+	// Watermark returns a model's watermark (the rolling tracker's
+	// Watermark); cusum rules need it and find no data without it.
+	Watermark func(model string) (time.Time, bool)
 	// Rules and Notifiers, usually from ParseRules and ParseNotifiers.
 	Rules     []Rule
 	Notifiers []NotifierConfig
@@ -73,6 +76,7 @@ type Options struct {
 type Manager struct {
 	store        Store
 	view         ViewFunc
+	watermark    func(model string) (time.Time, bool)
 	rules        []*Compiled
 	delivery     *dispatcher
 	leader       *lease.Leader
@@ -126,6 +130,7 @@ func New(opts Options) (*Manager, error) {
 	m := &Manager{
 		store:        opts.Store,
 		view:         opts.View,
+		watermark:    opts.Watermark,
 		rules:        rules,
 		confidence:   conf,
 		log:          cmp.Or(opts.Logger, slog.New(slog.DiscardHandler)),
@@ -394,21 +399,29 @@ func (m *Manager) evaluate(ctx context.Context, at time.Time, rules []*Compiled)
 // env is the daemon's evaluation environment at time at: the rolling
 // tracker's windows and the store's cells, each fixed range read once.
 func (m *Manager) env(at time.Time, models []store.ModelInfo) Env {
-	src := newCachedCounts(liveSource{view: m.view, store: m.store})
+	src := newCachedCounts(liveSource{view: m.view, watermark: m.watermark, store: m.store})
 	return Env{Source: src, Models: models, At: at, Confidence: m.confidence, Since: m.started}
 }
 
 // liveSource reads the current windows from the tracker and fixed ranges
 // from the store.
 type liveSource struct {
-	view  ViewFunc
-	store Store
+	view      ViewFunc
+	watermark func(model string) (time.Time, bool)
+	store     Store
 }
 
 func (s liveSource) View(model, window string) (windows.View, bool) { return s.view(model, window) }
 
 func (s liveSource) Counts(ctx context.Context, q store.Query) (store.Counts, error) {
 	return s.store.Counts(ctx, q)
+}
+
+func (s liveSource) Watermark(model string) (time.Time, bool) {
+	if s.watermark == nil {
+		return time.Time{}, false
+	}
+	return s.watermark(model)
 }
 
 // apply steps each instance of r with its finding. Instances of r on a

@@ -42,6 +42,10 @@ const (
 	// KindNoTraffic fires when no prediction from a model arrived for a
 	// duration.
 	KindNoTraffic Kind = "no_traffic"
+	// KindCUSUM fires when a Bernoulli CUSUM over the matured buckets of a
+	// per-class proportion crosses the threshold that gives the wanted
+	// mean time between false alarms.
+	KindCUSUM Kind = "cusum"
 )
 
 // AllModels as a rule's model applies the rule to every known model.
@@ -111,8 +115,9 @@ type Rule struct {
 	// DefaultMinCount.
 	MinCount int64
 
-	// Metric is what floor, ceiling and drop rules read (drop: recall,
-	// precision or specificity; default recall).
+	// Metric is what floor, ceiling, drop and cusum rules read (drop:
+	// recall, precision or specificity; cusum: those or prevalence;
+	// default recall for both).
 	Metric string
 	// Classes limits per-class rules to these classes; empty means all.
 	Classes []string
@@ -125,7 +130,7 @@ type Rule struct {
 	// chance, for drop and confusion_rise (a proportion, e.g. 0.05).
 	Margin float64
 	// Reference is the period drop, shift and confusion_rise rules compare
-	// the window with.
+	// the window with, and cusum rules take p0 from.
 	Reference Reference
 	// Test is the significance test of shift rules: chi_square (default),
 	// g_test, or none.
@@ -138,6 +143,22 @@ type Rule struct {
 	Pairs []Pair
 	// QuietFor is how long a model may send no prediction (no_traffic).
 	QuietFor time.Duration
+
+	// Direction is what a cusum rule watches for: a drop (down, the
+	// default) or a rise (up) of the proportion.
+	Direction string
+	// Lag is how old a bucket must be before a cusum rule reads it (its
+	// labels have matured).
+	Lag time.Duration
+	// Expected is a cusum rule's in-control proportion p0 when it has no
+	// reference period; 0 means unset.
+	Expected float64
+	// Shift is the change a cusum rule is tuned to catch fast:
+	// p1 = p0 − Shift (down) or p0 + Shift (up).
+	Shift float64
+	// FalseAlarmEvery is a cusum rule's wanted mean time between false
+	// alarms while nothing changes.
+	FalseAlarmEvery time.Duration
 }
 
 // Reference is a comparison period: another configured window, or a fixed

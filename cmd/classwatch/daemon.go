@@ -177,6 +177,7 @@ func (d *daemon) buildAlerts(reg prometheus.Registerer) error {
 	d.alerts, err = alerts.New(alerts.Options{
 		Store:        d.store,
 		View:         d.tracker.View,
+		Watermark:    d.tracker.Watermark,
 		Rules:        d.cfg.rules,
 		Notifiers:    d.cfg.notifiers,
 		Windows:      d.cfg.allWindows(),

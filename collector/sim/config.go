@@ -24,7 +24,8 @@ const CardLabelTimeout = "7d"
 //
 // Its alerts section (the alerts package's rule syntax) holds the rules the
 // scenario triggers: card-screen's fraud recall dropping against the
-// baseline period before the drift, and the ticket queue mix and output mix
+// baseline period before the drift (a per-window drop test, and a cusum
+// on the matured buckets), and the ticket queue mix and output mix
 // shifting during the app outage. Rules run on wall-clock schedules, and at
 // DefaultSpeed 5s of wall time are 10 simulated hours: the shift rules run
 // that often so that the day-long outage (12s of wall time) is seen.
@@ -76,6 +77,17 @@ models:
     severity: critical
     annotations:
       description: Fraud recall is lower than in the baseline days; look for a new fraud pattern by segment.
+  - name: card-fraud-recall-cusum
+    kind: cusum
+    model: %s
+    metric: recall
+    classes: [%s]
+    lag: 72h
+    reference: {from: %q, to: %q}
+    shift: 0.2
+    false_alarm_every: 90d
+    schedule: "@every 10s"
+    severity: critical
   - name: ticket-queue-mix-shift
     kind: prevalence_shift
     model: %s
@@ -90,7 +102,7 @@ models:
     reference: {window: 3d}
     psi_threshold: 0.2
     schedule: "@every 5s"
-`, CardScreen, Fraud, stamp(from), stamp(to), TicketRouter, TicketRouter)
+`, CardScreen, Fraud, stamp(from), stamp(to), CardScreen, Fraud, stamp(from), stamp(to), TicketRouter, TicketRouter)
 	return b.String(), nil
 }
 
