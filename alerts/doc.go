@@ -91,6 +91,7 @@
 // month than "5%" suggests. A cusum rule states the on-call promise
 // directly, as a mean time between false alarms:
 //
+//	alerts:
 //	- name: fraud-recall-cusum
 //	  kind: cusum
 //	  model: card-screen

@@ -81,6 +81,9 @@ type kindSpec struct {
 	// and returns the evaluator. r is the compiled rule's own copy and
 	// stays valid as long as the evaluator.
 	build func(r *Rule, bad badFunc) Evaluator
+	// lookback, when set, is how far before the watermark the kind reads
+	// stored cells itself, beyond its windows (see Rule.Lookback).
+	lookback func(r *Rule) time.Duration
 	// describe is the one-line summary of an alert of this kind with
 	// known figures (see summary).
 	describe func(a *Alert, subject string) string
@@ -115,7 +118,7 @@ var kinds = map[Kind]kindSpec{
 		defaults: shiftDefaults, build: newShift(false), describe: describeShift("predicted-class mix"),
 	},
 	KindCUSUM: {
-		keys:     cusumKeys,
+		keys: cusumKeys, lookback: func(r *Rule) time.Duration { return r.Lag + cusumHorizon },
 		defaults: cusumDefaults, build: newCUSUM, describe: describeCUSUM,
 	},
 	KindNoTraffic: {

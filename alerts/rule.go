@@ -212,6 +212,17 @@ var (
 // reservedLabels are set by the evaluator on every alert.
 var reservedLabels = []string{"alertname", "model", "class", "predicted", "severity"}
 
+// Lookback is how far before its model's watermark the rule reads stored
+// cells itself, beyond the configured windows it names (a cusum rule reads
+// lag plus a week of buckets); 0 for the other kinds. A replay of the rule
+// must hold the buckets that far back.
+func (r Rule) Lookback() time.Duration {
+	if spec, ok := kinds[r.Kind]; ok && spec.lookback != nil {
+		return spec.lookback(&r)
+	}
+	return 0
+}
+
 // withDefaults fills in the settings left out.
 func (r Rule) withDefaults() Rule {
 	r.Schedule = cmp.Or(r.Schedule, DefaultSchedule)

@@ -284,7 +284,8 @@ func recount(t *testing.T, st store.Store, h history, opts Options) Report {
 				return windows.View{Model: model, Window: w, From: from, To: to, Watermark: wm, Matrix: m, Predicted: pred}, true
 			}
 			slow.at = opts.From
-			m, err := alerts.New(alerts.Options{Store: slow, View: view, Rules: []alerts.Rule{p.rule}, Now: func() time.Time { return slow.at }})
+			watermark := func(string) (time.Time, bool) { return windows.Watermark(slow.at, bucket), true }
+			m, err := alerts.New(alerts.Options{Store: slow, View: view, Watermark: watermark, Rules: []alerts.Rule{p.rule}, Now: func() time.Time { return slow.at }})
 			if err != nil {
 				t.Fatal(err)
 			}

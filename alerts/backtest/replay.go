@@ -40,7 +40,7 @@ func replayModel(ctx context.Context, opts Options, info store.ModelInfo, plans 
 	next := make([]time.Time, len(plans))
 	for i, p := range plans {
 		managers[i], err = alerts.New(alerts.Options{
-			Store: as, View: tr.View, Rules: []alerts.Rule{p.rule}, Windows: opts.Windows,
+			Store: as, View: tr.View, Watermark: tr.Watermark, Rules: []alerts.Rule{p.rule}, Windows: opts.Windows,
 			Confidence: opts.Confidence, Now: now,
 		})
 		if err != nil {
@@ -123,6 +123,9 @@ func startOf(from time.Time, mo windows.ModelOptions, plans []*plan) time.Time {
 	}
 	start := windows.BucketStart(from.Add(-reach), mo.Bucket)
 	for _, p := range plans {
+		if back := windows.BucketStart(from.Add(-p.rule.Lookback()), mo.Bucket); back.Before(start) {
+			start = back // a cusum reads its own matured buckets
+		}
 		if ref := p.rule.Reference; ref.Window == "" && !ref.From.IsZero() && ref.From.Before(start) {
 			start = windows.BucketStart(ref.From, mo.Bucket)
 		}
