@@ -30,7 +30,7 @@ type Spec struct {
 	// predicted fraud, RecallAfter from ChangeAt on (zero ChangeAt: no
 	// change); FalsePositive the share of legit payments predicted fraud.
 	Prevalence, Recall, RecallAfter, FalsePositive float64
-	ChangeAt                                      time.Time
+	ChangeAt                                       time.Time
 	// LabelDelay: each fraud's label comes uniformly within this delay of
 	// its prediction.
 	LabelDelay time.Duration
