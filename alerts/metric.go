@@ -31,7 +31,7 @@ func specsFromTable(defs []windows.MetricDef) map[string]metricSpec {
 		case d.Counts != nil:
 		case d.Judged != nil:
 			spec.value = func(ms windows.Metrics, m *windows.Matrix, k int) (*float64, int64) {
-				return d.Value(&ms, k), d.Judged(m, k)
+				return d.Value(&ms, k), d.Judged(&ms, m, k)
 			}
 		default:
 			continue

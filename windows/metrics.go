@@ -26,6 +26,17 @@ type ClassMetrics struct {
 	RecallInterval      *Interval
 	PrecisionInterval   *Interval
 	SpecificityInterval *Interval
+
+	// Early-warning figures (README.md "Early warning"), set by
+	// AddEarlyWarning against a reference window; nil when undefined.
+	// EstimatedPrevalence is the black-box shift estimate with its
+	// delta-method interval, EstimatedPrecision the precision expected
+	// under label shift, ScoreShift the Jensen–Shannon distance of the
+	// class's score histogram from the reference's.
+	EstimatedPrevalence         *float64
+	EstimatedPrevalenceInterval *Interval
+	EstimatedPrecision          *float64
+	ScoreShift                  *float64
 }
 
 // Metrics are the figures of one matrix. Nil pointers are undefined ratios.
@@ -43,6 +54,13 @@ type Metrics struct {
 	MCC *float64
 	// Kappa is Cohen's kappa.
 	Kappa *float64
+
+	// Score figures over labeled predictions with scores, set by
+	// AddEarlyWarning; nil when the period's scores are unknown (Scores)
+	// or none was labeled (the rest).
+	Scores           *ScoreSums
+	Brier            *float64
+	CalibrationError *float64
 
 	// PerClass is in the matrix's class order.
 	PerClass []ClassMetrics

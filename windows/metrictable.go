@@ -1,6 +1,9 @@
 package windows
 
-import "slices"
+import (
+	"math"
+	"slices"
+)
 
 // MetricScope says what one value of a metric describes.
 type MetricScope int8
@@ -36,8 +39,9 @@ type MetricDef struct {
 	Help  string
 	Scope MetricScope
 	// Min is the least value the metric takes: 0, or −1 for a correlation.
-	// The greatest is 1.
 	Min float64
+	// Max is the greatest value when it is not 1 (zero means 1).
+	Max float64
 	// Value reads the metric from computed figures; k is the class index
 	// for ScopeClass metrics and ignored otherwise. Nil is undefined.
 	Value func(ms *Metrics, k int) *float64
@@ -52,8 +56,9 @@ type MetricDef struct {
 	// proportion of counts, for binomial tests; nil for any other metric.
 	Counts func(m *Matrix, pred []int64, k int) (x, n int64)
 	// Judged returns the count a metric that is not a proportion rests
-	// on, for minimum-count checks; nil when Counts is set.
-	Judged func(m *Matrix, k int) int64
+	// on, for minimum-count checks; nil when Counts is set. A metric with
+	// neither is not offered to alert rules.
+	Judged func(ms *Metrics, m *Matrix, k int) int64
 }
 
 // PromLower names the family of the interval's lower bound.
@@ -124,6 +129,29 @@ func MetricDefs() []MetricDef {
 			Judged: labeled,
 		},
 		{
+			Name: "scored", Title: "labeled with scores", Prom: "classwatch_window_scored",
+			Help: "Labeled predictions made in the window that carry scores.",
+			Value: func(ms *Metrics, _ int) *float64 {
+				if ms.Scores == nil {
+					return nil
+				}
+				v := float64(ms.Scores.Scored())
+				return &v
+			},
+		},
+		{
+			Name: "brier", Title: "Brier score", Prom: "classwatch_brier_score", Max: 2,
+			Help:   "Multi-class Brier score of the window's labeled predictions with scores: mean of the sum over classes of (score - 1[actual]) squared, in [0, 2].",
+			Value:  func(ms *Metrics, _ int) *float64 { return ms.Brier },
+			Judged: scored,
+		},
+		{
+			Name: "calibration_error", Title: "calibration error", Prom: "classwatch_calibration_error_ratio",
+			Help:   "Expected calibration error of the predicted class's score over 10 equal-width bins, on the window's labeled predictions with scores.",
+			Value:  func(ms *Metrics, _ int) *float64 { return ms.CalibrationError },
+			Judged: scored,
+		},
+		{
 			Name: "recall", Title: "recall", Prom: "classwatch_recall_ratio", Scope: ScopeClass,
 			Help:       "Recall of the class in the window: true positives over labeled examples of the class.",
 			Value:      func(ms *Metrics, k int) *float64 { return ms.PerClass[k].Recall },
@@ -159,7 +187,7 @@ func MetricDefs() []MetricDef {
 			Value: func(ms *Metrics, k int) *float64 { return ms.PerClass[k].F1 },
 			// F1 is defined by TP, FP and FN: it rests on the examples that
 			// are actual or predicted k.
-			Judged: func(m *Matrix, k int) int64 { return m.Row(k) + m.Col(k) - m.At(k, k) },
+			Judged: func(_ *Metrics, m *Matrix, k int) int64 { return m.Row(k) + m.Col(k) - m.At(k, k) },
 		},
 		{
 			Name: "prevalence", Title: "prevalence", Prom: "classwatch_prevalence_ratio", Scope: ScopeClass,
@@ -177,10 +205,39 @@ func MetricDefs() []MetricDef {
 				return pred[k], sumCounts(pred)
 			},
 		},
+		{
+			Name: "estimated_prevalence", Title: "estimated prevalence", Prom: "classwatch_estimated_prevalence_ratio", Scope: ScopeClass,
+			Help:       "Prevalence of the class in the window estimated from the predicted mix by black-box shift estimation against the reference window.",
+			Value:      func(ms *Metrics, k int) *float64 { return ms.PerClass[k].EstimatedPrevalence },
+			Interval:   func(ms *Metrics, k int) *Interval { return ms.PerClass[k].EstimatedPrevalenceInterval },
+			PromBounds: "delta-method interval of the class's estimated prevalence",
+			Judged:     predictions,
+		},
+		{
+			Name: "estimated_precision", Title: "estimated precision", Prom: "classwatch_estimated_precision_ratio", Scope: ScopeClass,
+			Help:   "Precision of the class expected under label shift: estimated prevalence times the reference window's recall, over the window's predicted share.",
+			Value:  func(ms *Metrics, k int) *float64 { return ms.PerClass[k].EstimatedPrecision },
+			Judged: func(ms *Metrics, _ *Matrix, k int) int64 { return ms.PerClass[k].PredictedCount },
+		},
+		{
+			Name: "score_shift", Title: "score shift", Prom: "classwatch_score_shift_distance", Scope: ScopeClass, Max: math.Sqrt(math.Ln2),
+			Help:   "Jensen-Shannon distance (natural logarithm, in [0, 0.833]) between the class's score histogram in the window and in the reference window.",
+			Value:  func(ms *Metrics, k int) *float64 { return ms.PerClass[k].ScoreShift },
+			Judged: predictions,
+		},
 	}
 }
 
-func labeled(m *Matrix, _ int) int64 { return m.Total() }
+func labeled(_ *Metrics, m *Matrix, _ int) int64 { return m.Total() }
+
+func predictions(ms *Metrics, _ *Matrix, _ int) int64 { return ms.Predictions }
+
+func scored(ms *Metrics, _ *Matrix, _ int) int64 {
+	if ms.Scores == nil {
+		return 0
+	}
+	return ms.Scores.Scored()
+}
 
 func sumCounts(v []int64) int64 {
 	var s int64

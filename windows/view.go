@@ -21,11 +21,52 @@ type View struct {
 	// Predicted counts all predictions made in the period per class index
 	// of Matrix, labeled or not.
 	Predicted []int64
+	// Scores are the period's score aggregates, per class index of Matrix.
+	Scores *ScoreSums
+	// Reference is the model's reference window at the same watermark;
+	// nil when the model has none.
+	Reference *Reference
 }
 
-// Metrics computes the view's figures at the given confidence.
+// Metrics computes the view's figures at the given confidence, the
+// early-warning figures included (AddEarlyWarning).
 func (v View) Metrics(confidence float64) Metrics {
-	return Compute(v.Matrix, v.Predicted, confidence)
+	ms := Compute(v.Matrix, v.Predicted, confidence)
+	AddEarlyWarning(&ms, v.Predicted, v.Scores, v.Reference, confidence)
+	return ms
+}
+
+// ScoresFromCounts sums the score aggregates of store counts per class
+// index of classes. It fails on a class not in classes.
+func ScoresFromCounts(classes []string, c store.Counts) (*ScoreSums, error) {
+	index := make(map[string]int, len(classes))
+	for i, cl := range classes {
+		index[cl] = i
+	}
+	s := NewScoreSums(len(classes))
+	for _, h := range c.Scores {
+		k, ok := index[h.Class]
+		if !ok {
+			return nil, fmt.Errorf("sum score counts: unknown class %q", h.Class)
+		}
+		if h.Bin < 0 || h.Bin >= store.ScoreBins {
+			return nil, fmt.Errorf("sum score counts: bin %d out of range", h.Bin)
+		}
+		s.Hist[k][h.Bin] += h.N
+	}
+	for _, cb := range c.Calibration {
+		if cb.Bin < 0 || cb.Bin >= store.ScoreBins {
+			return nil, fmt.Errorf("sum calibration counts: bin %d out of range", cb.Bin)
+		}
+		s.Calib[cb.Bin].N += cb.N
+		s.Calib[cb.Bin].ScoreSum += cb.ScoreSum
+		s.Calib[cb.Bin].Correct += cb.Correct
+	}
+	for _, b := range c.Brier {
+		s.BrierN += b.N
+		s.BrierSum += b.Sum
+	}
+	return s, nil
 }
 
 // FromCounts sums store counts into a matrix over classes and a predicted

@@ -248,7 +248,7 @@ func (a *API) handleWindows(w http.ResponseWriter, r *http.Request) {
 	}
 	out := ModelWindows{Model: model, Watermark: optTime(wm), Windows: make([]WindowReport, len(views))}
 	for i, v := range views {
-		out.Windows[i] = WindowReport{WindowBounds: bounds(v.Window, v.Watermark), Figures: NewFigures(v.Matrix, v.Predicted, a.confidence)}
+		out.Windows[i] = WindowReport{WindowBounds: bounds(v.Window, v.Watermark), Figures: FiguresOf(v.Matrix, v.Metrics(a.confidence), a.confidence)}
 	}
 	writeJSON(w, http.StatusOK, out)
 }

@@ -495,8 +495,8 @@ func TestWriteReport(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	// Header, 9 summary rows, 2×2 cells, 14 figures per class.
-	if got, want := len(rows), 1+9+4+2*14; got != want {
+	// Header, 12 summary rows, 2×2 cells, 19 figures per class.
+	if got, want := len(rows), 1+12+4+2*19; got != want {
 		t.Errorf("%d csv rows, want %d", got, want)
 	}
 	var recallLegit, cellFraud []string

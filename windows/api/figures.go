@@ -9,7 +9,8 @@ import (
 )
 
 // MarshalJSON writes the window-scope metrics in windows.MetricDefs order,
-// then "per_class"; an undefined metric is null.
+// then "reliability" when the scores are known, then "per_class"; an
+// undefined metric is null.
 func (f MetricFigures) MarshalJSON() ([]byte, error) {
 	var b bytes.Buffer
 	b.WriteByte('{')
@@ -18,6 +19,11 @@ func (f MetricFigures) MarshalJSON() ([]byte, error) {
 			if err := field(&b, d.Name, f.Values[d.Name]); err != nil {
 				return nil, err
 			}
+		}
+	}
+	if f.Reliability != nil {
+		if err := field(&b, "reliability", f.Reliability); err != nil {
+			return nil, err
 		}
 	}
 	if err := field(&b, "per_class", f.PerClass); err != nil {
@@ -41,6 +47,9 @@ func (f *MetricFigures) UnmarshalJSON(data []byte) error {
 				return err
 			}
 		}
+	}
+	if err := decodeField(raw, "reliability", &f.Reliability, func([]windows.ReliabilityBin) {}); err != nil {
+		return err
 	}
 	return decodeField(raw, "per_class", &f.PerClass, func(map[string]ClassFigures) {})
 }

@@ -42,7 +42,7 @@ func TestFiguresJSONContract(t *testing.T) {
 	if err := json.Unmarshal(body, &top); err != nil {
 		t.Fatal(err)
 	}
-	wantTop := []string{"accuracy", "balanced_accuracy", "kappa", "label_coverage", "macro_f1", "mcc", "per_class"}
+	wantTop := []string{"accuracy", "balanced_accuracy", "brier", "calibration_error", "kappa", "label_coverage", "macro_f1", "mcc", "per_class", "scored"}
 	if got := slices.Sorted(maps.Keys(top)); !slices.Equal(got, wantTop) {
 		t.Errorf("metrics fields %v, want %v", got, wantTop)
 	}
@@ -50,8 +50,9 @@ func TestFiguresJSONContract(t *testing.T) {
 	if err := json.Unmarshal(top["per_class"], &perClass); err != nil {
 		t.Fatal(err)
 	}
-	wantClass := []string{"f1", "precision", "precision_interval", "predicted_share", "predictions", "prevalence",
-		"recall", "recall_interval", "specificity", "specificity_interval", "support"}
+	wantClass := []string{"estimated_precision", "estimated_prevalence", "estimated_prevalence_interval", "f1",
+		"precision", "precision_interval", "predicted_share", "predictions", "prevalence",
+		"recall", "recall_interval", "score_shift", "specificity", "specificity_interval", "support"}
 	for _, c := range rep.Classes {
 		if got := slices.Sorted(maps.Keys(perClass[c])); !slices.Equal(got, wantClass) {
 			t.Errorf("per_class.%s fields %v, want %v", c, got, wantClass)

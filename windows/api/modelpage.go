@@ -178,7 +178,7 @@ func (a *API) modelWindows(ctx context.Context, p *modelPage, alerts []alertView
 		b := bounds(v.Window, v.Watermark)
 		mw := modelWindow{Name: v.Window.Name, From: timeText(b.From), To: timeText(b.To), Lag: b.Lag, Matured: v.Window.Lag > 0}
 		if p.segment == nil {
-			mw.F = NewFigures(v.Matrix, v.Predicted, a.confidence)
+			mw.F = FiguresOf(v.Matrix, v.Metrics(a.confidence), a.confidence)
 		} else if b.From != nil {
 			q := MatrixQuery{Model: p.Model, From: *b.From, To: *b.To, Bucket: a.tracker.Options(p.Model).Bucket, Segment: p.segment}
 			rep, err := MatrixReport(ctx, a.store, q, a.now(), a.confidence)

@@ -81,6 +81,9 @@ type MetricFigures struct {
 	Values map[string]*float64
 	// PerClass holds every class's figures by class name.
 	PerClass map[string]ClassFigures
+	// Reliability holds the reliability bins of the labeled predictions
+	// with scores; nil when the period's scores are unknown.
+	Reliability []windows.ReliabilityBin
 }
 
 // ClassFigures are one class's figures; a nil value is undefined.
@@ -150,6 +153,9 @@ func readPeriod(ctx context.Context, st store.Store, q MatrixQuery, now time.Tim
 	for _, c := range p.counts.Predicted {
 		p.classes = appendNew(p.classes, c.Predicted)
 	}
+	for _, c := range p.counts.Scores {
+		p.classes = appendNew(p.classes, c.Class)
+	}
 	return p, nil
 }
 
@@ -159,13 +165,19 @@ func (p period) report(confidence float64) (Report, error) {
 	if err != nil {
 		return Report{}, fmt.Errorf("sum counts: %w", err)
 	}
+	scores, err := windows.ScoresFromCounts(p.classes, p.counts)
+	if err != nil {
+		return Report{}, fmt.Errorf("sum counts: %w", err)
+	}
+	mt := windows.Compute(m, pred, confidence)
+	windows.AddEarlyWarning(&mt, pred, scores, nil, confidence)
 	return Report{
 		Model:   p.q.Model,
 		From:    p.q.From.UTC(),
 		To:      p.q.To.UTC(),
 		AsOf:    p.asOf,
 		Segment: p.q.Segment,
-		Figures: NewFigures(m, pred, confidence),
+		Figures: FiguresOf(m, mt, confidence),
 	}, nil
 }
 
@@ -202,7 +214,12 @@ func (q MatrixQuery) validate() error {
 // NewFigures computes the figures of matrix m with predicted-class counts
 // pred (labeled or not) at the given confidence.
 func NewFigures(m *windows.Matrix, pred []int64, confidence float64) Figures {
-	mt := windows.Compute(m, pred, confidence)
+	return FiguresOf(m, windows.Compute(m, pred, confidence), confidence)
+}
+
+// FiguresOf returns the figures of matrix m whose metrics mt were computed
+// at the given confidence (windows.Compute, View.Metrics).
+func FiguresOf(m *windows.Matrix, mt windows.Metrics, confidence float64) Figures {
 	f := Figures{
 		Classes:     slices.Clone(m.Classes()),
 		Matrix:      m.Dense(),
@@ -237,6 +254,9 @@ func NewFigures(m *windows.Matrix, pred []int64, confidence float64) Figures {
 		if d.Scope == windows.ScopeWindow {
 			f.Metrics.Values[d.Name] = d.Value(&mt, 0)
 		}
+	}
+	if mt.Scores != nil {
+		f.Metrics.Reliability = mt.Scores.Reliability()
 	}
 	return f
 }
