@@ -68,6 +68,8 @@ type config struct {
 	ExternalURL string `yaml:"external_url"`
 
 	Ingest ingestConfig `yaml:"ingest"`
+	// Sources are streams consumed besides HTTP push (config_sources.go).
+	Sources []sourceConfig `yaml:"sources,omitempty"`
 
 	// Alerts and Notifiers are decoded by the alerts package into rules
 	// and notifiers when the file is loaded.

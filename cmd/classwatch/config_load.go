@@ -63,8 +63,10 @@ func parseConfig(data []byte, src configSource) (config, error) {
 	if v := getenv(databaseURLEnv); v != "" {
 		cfg.Database = v
 	}
+	cfg.applySourceDefaults()
 	if src.secrets {
 		cfg.Ingest.applyEnv(getenv)
+		cfg.applySourceEnv(getenv)
 	}
 	if src.listen != "" {
 		cfg.Listen = src.listen
@@ -133,6 +135,7 @@ func (c config) validate(secrets bool) error {
 	models := c.validateModels(p)
 	c.Ingest.validate(p)
 	c.validateTokens(p, models, secrets)
+	c.validateSources(p, secrets)
 	c.validateRuleWindows(p)
 	return errors.Join(p.errs...)
 }

@@ -17,6 +17,7 @@ import (
 
 	"github.com/classwatch/classwatch/alerts"
 	"github.com/classwatch/classwatch/collector"
+	"github.com/classwatch/classwatch/collector/natsjs"
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/api"
 	"github.com/classwatch/classwatch/windows/store"
@@ -43,6 +44,8 @@ type daemon struct {
 	alerts    *alerts.Manager
 	server    *http.Server
 	listener  net.Listener
+	// sources are the stream sources (sources.go).
+	sources []*natsjs.Source
 
 	// stops are teardown steps, run last-registered first.
 	stops []stopStep
@@ -114,6 +117,9 @@ func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, er
 		collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
 	)
 	if err := d.buildIngest(ctx, reg); err != nil {
+		return d, err
+	}
+	if err := d.buildSources(reg); err != nil {
 		return d, err
 	}
 	d.listener, err = net.Listen("tcp", cfg.Listen)
@@ -196,7 +202,7 @@ func (d *daemon) buildAlerts(reg prometheus.Registerer) error {
 func (d *daemon) buildServer(reg *prometheus.Registry) {
 	mux := http.NewServeMux()
 	d.collector.Register(mux)
-	api.New(api.Options{Store: d.store, Tracker: d.tracker, Confidence: d.cfg.Confidence, Logger: d.log}).Register(mux)
+	api.New(api.Options{Store: d.store, Tracker: d.tracker, Confidence: d.cfg.Confidence, Logger: d.log, Ready: d.sourceChecks()}).Register(mux)
 	d.alerts.Register(mux)
 	// The window families (~52,000 series for 50 models × 12 classes × 4
 	// windows) bypass the registry's per-series checks; MergeGatherers
@@ -255,6 +261,7 @@ func (d *daemon) serve(ctx context.Context) error {
 	}
 	d.onStop("alerts", d.alerts.Stop)
 
+	d.startSources(ctx)
 	serveErr := make(chan error, 1)
 	go func() { serveErr <- d.server.Serve(d.listener) }()
 	d.onStop("http server", d.server.Shutdown)

@@ -85,24 +85,13 @@ func (c Config) Check() error {
 	c = c.withDefaults()
 	var errs []error
 	bad := func(format string, args ...any) { errs = append(errs, fmt.Errorf(format, args...)) }
-	if c.URL == "" {
-		bad("url is required")
+	if err := CheckURL(c.URL); err != nil {
+		bad("url: %v", err)
 	}
-	for _, u := range strings.Split(c.URL, ",") {
-		if u = strings.TrimSpace(u); u == "" {
-			continue
-		}
-		p, err := url.Parse(u)
-		if err != nil || (p.Scheme != "nats" && p.Scheme != "tls") || p.Host == "" {
-			bad("url %q is not nats://host:port or tls://host:port", RedactURL(u))
-		} else if p.User != nil {
-			bad("url %s carries credentials; use token_env, user and password_env, or credentials_file", RedactURL(u))
-		}
-	}
-	if err := checkName(c.Stream); err != nil {
+	if err := CheckName(c.Stream); err != nil {
 		bad("stream: %v", err)
 	}
-	if err := checkName(c.Durable); err != nil {
+	if err := CheckName(c.Durable); err != nil {
 		bad("durable: %v", err)
 	}
 	for _, s := range []struct{ key, subject string }{
@@ -133,9 +122,28 @@ func (c Config) Check() error {
 	return errors.Join(errs...)
 }
 
-// checkName accepts a stream or consumer name: NATS forbids spaces, '.',
+// CheckURL accepts one server URL, or a comma-separated list of them, of
+// the form nats://host:port or tls://host:port without credentials.
+func CheckURL(list string) error {
+	if strings.TrimSpace(list) == "" {
+		return errors.New("is required")
+	}
+	for _, u := range strings.Split(list, ",") {
+		u = strings.TrimSpace(u)
+		p, err := url.Parse(u)
+		switch {
+		case err != nil || (p.Scheme != "nats" && p.Scheme != "tls") || p.Host == "":
+			return fmt.Errorf("%q is not nats://host:port or tls://host:port", RedactURL(u))
+		case p.User != nil:
+			return fmt.Errorf("%s carries credentials; use token_env, user and password_env, or credentials_file", RedactURL(u))
+		}
+	}
+	return nil
+}
+
+// CheckName accepts a stream or consumer name: NATS forbids spaces, '.',
 // '*', '>' and path separators in them.
-func checkName(s string) error {
+func CheckName(s string) error {
 	switch {
 	case s == "":
 		return errors.New("is required")

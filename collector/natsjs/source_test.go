@@ -287,7 +287,10 @@ func TestMessagesCommitOnceWithRejectedLines(t *testing.T) {
 		t.Errorf("duplicate labels counted %v, want 1", n)
 	}
 
-	waitFor(t, "rejection records", func() bool { g := got(); return len(g["cw.predictions.rejected"]) == 1 && len(g["cw.labels.rejected"]) == 1 })
+	waitFor(t, "rejection records", func() bool {
+		g := got()
+		return len(g["cw.predictions.rejected"]) == 1 && len(g["cw.labels.rejected"]) == 1
+	})
 	pr := got()["cw.predictions.rejected"][0]
 	if pr.Line != 3 || !strings.Contains(pr.Error, `"chargeback"`) || !strings.Contains(pr.Original, `"id":"p9"`) {
 		t.Errorf("prediction rejection %+v, want line 3 naming the class with its original line", pr)

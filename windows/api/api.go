@@ -10,7 +10,7 @@
 //	GET /v1/models/{model}/matrix       any bucket-aligned period: ?from=T&to=T[&segment=S][&as_of=T]
 //	GET /v1/models/{model}/report       the audit report (HTML) of a period: same parameters
 //	GET /healthz                        the process answers
-//	GET /readyz                         the store answers (else 503)
+//	GET /readyz                         the store answers and every Options.Ready check passes (else 503)
 //	GET /                               the on-call overview (HTML)
 //	GET /models/{model}                 one model's page (HTML): ?segment=S
 //
@@ -53,6 +53,10 @@ type Options struct {
 	// History is how far before the watermark a model page's history
 	// reaches; 0 means DefaultHistory.
 	History time.Duration
+	// Ready are further conditions of /readyz, such as a stream source
+	// being connected; each returns nil when ready, else an error whose
+	// message names no host or user (it is shown to the caller).
+	Ready []func(ctx context.Context) error
 }
 
 // API serves the read endpoints. It is safe for concurrent use.
@@ -64,6 +68,7 @@ type API struct {
 	now        func() time.Time
 	history    time.Duration
 	pages      pageTemplates
+	ready      []func(ctx context.Context) error
 }
 
 // pageTemplates are the parsed HTML pages.
@@ -80,6 +85,7 @@ func New(opts Options) *API {
 		log:        opts.Logger,
 		now:        opts.Now,
 		history:    cmp.Or(opts.History, DefaultHistory),
+		ready:      opts.Ready,
 		pages: pageTemplates{
 			overview: parsePage("overview", overviewContent),
 			model:    parsePage("model", modelContent),
@@ -328,6 +334,13 @@ func (a *API) handleReady(w http.ResponseWriter, r *http.Request) {
 		a.log.WarnContext(r.Context(), "not ready: store ping failed", "err", err)
 		writeError(w, http.StatusServiceUnavailable, "store not ready")
 		return
+	}
+	for _, check := range a.ready {
+		if err := check(ctx); err != nil {
+			a.log.WarnContext(r.Context(), "not ready", "err", err)
+			writeError(w, http.StatusServiceUnavailable, err.Error())
+			return
+		}
 	}
 	writeJSON(w, http.StatusOK, map[string]string{"status": "ready"})
 }
