@@ -7,6 +7,7 @@ import (
 	"errors"
 	"fmt"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -74,7 +75,7 @@ func (s *Source) handle(ctx context.Context, msg jetstream.Msg) {
 		return
 	}
 
-	res, err := s.sub.Submit(ctx, k, bytes.NewReader(data), collector.SubmitOptions{Format: collector.FormatAuto, Source: name})
+	res, format, err := s.submit(ctx, k, data, bodyFormat(msg.Headers()))
 	var (
 		storeErr *collector.StoreError
 		tooLarge *collector.TooLargeError
@@ -83,7 +84,7 @@ func (s *Source) handle(ctx context.Context, msg jetstream.Msg) {
 	)
 	switch {
 	case err == nil:
-		s.publishRejects(msg.Subject(), seq, rejections(data, res))
+		s.publishRejects(msg.Subject(), seq, rejections(data, format, res))
 		s.ack(ctx, msg)
 	case errors.Is(err, collector.ErrBusy):
 		s.nak(msg, nakBusy, s.cfg.NakDelay)
@@ -101,6 +102,39 @@ func (s *Source) handle(ctx context.Context, msg jetstream.Msg) {
 		s.log.Warn("message not ingested; it will be redelivered", "sequence", seq, "err", err)
 		s.nak(msg, nakError, s.cfg.NakDelay)
 	}
+}
+
+// submit hands one body to the collector. A body of unknown format that
+// starts like a JSON object but does not parse as one is taken as NDJSON
+// whose first line is bad: its other lines are not sunk with it.
+// It returns the format the lines were numbered in.
+func (s *Source) submit(ctx context.Context, k collector.Kind, data []byte, f collector.Format) (collector.Result, collector.Format, error) {
+	opts := collector.SubmitOptions{Format: f, Source: s.cfg.Name}
+	res, err := s.sub.Submit(ctx, k, bytes.NewReader(data), opts)
+	var bodyErr *collector.BodyError
+	if f == collector.FormatAuto && errors.As(err, &bodyErr) {
+		if rest := bytes.TrimLeft(data, " \t\r\n\xef\xbb\xbf"); len(rest) > 0 && rest[0] == '{' {
+			opts.Format = collector.NDJSON
+			res, err = s.sub.Submit(ctx, k, bytes.NewReader(data), opts)
+			return res, collector.NDJSON, err
+		}
+	}
+	return res, f, err
+}
+
+// bodyFormat reads a message's Content-Type header, as HTTP ingest does:
+// application/x-ndjson (or application/ndjson) is NDJSON,
+// application/json one object or an array; without it the collector
+// detects the format.
+func bodyFormat(h nats.Header) collector.Format {
+	ct, _, _ := strings.Cut(h.Get("Content-Type"), ";")
+	switch strings.ToLower(strings.TrimSpace(ct)) {
+	case "application/x-ndjson", "application/ndjson":
+		return collector.NDJSON
+	case "application/json":
+		return collector.JSON
+	}
+	return collector.FormatAuto
 }
 
 // refuse acknowledges a message that can never be ingested, after
@@ -182,11 +216,11 @@ func (s *Source) publishRejects(subject string, seq uint64, recs []Rejection) {
 }
 
 // rejections pairs each rejected line of res with its text in body.
-func rejections(body []byte, res collector.Result) []Rejection {
+func rejections(body []byte, f collector.Format, res collector.Result) []Rejection {
 	if len(res.Rejected) == 0 && res.RejectedOmitted == 0 {
 		return nil
 	}
-	lines := splitLines(body)
+	lines := splitLines(body, f)
 	recs := make([]Rejection, 0, len(res.Rejected)+1)
 	for _, le := range res.Rejected {
 		var text []byte
@@ -210,28 +244,33 @@ func record(line int, why string, text []byte) Rejection {
 	return r
 }
 
-// splitLines returns the lines of a body as the collector numbers them
-// (see collector.FormatAuto): the elements of a JSON array (line = index +
-// 1); the whole body when it is one object spread over several lines;
-// else the physical lines of NDJSON.
-func splitLines(body []byte) [][]byte {
+// splitLines returns the lines of a body as the collector numbers them:
+// the elements of a JSON array (line = index + 1), the whole body for one
+// JSON object, the physical lines of NDJSON. FormatAuto is resolved as
+// the collector does (see collector.FormatAuto).
+func splitLines(body []byte, f collector.Format) [][]byte {
 	body = bytes.TrimPrefix(body, []byte("\xef\xbb\xbf"))
 	rest := bytes.TrimLeft(body, " \t\r\n")
-	if len(rest) > 0 && rest[0] == '[' {
+	if f == collector.FormatAuto {
+		f = collector.NDJSON
+		if len(rest) > 0 && rest[0] == '[' {
+			f = collector.JSON
+		} else if len(rest) > 0 && rest[0] == '{' {
+			if first, _, _ := bytes.Cut(rest, []byte("\n")); !json.Valid(bytes.TrimSpace(first)) {
+				f = collector.JSON
+			}
+		}
+	}
+	if f == collector.JSON {
 		var elems []json.RawMessage
-		if json.Unmarshal(rest, &elems) == nil {
+		if len(rest) > 0 && rest[0] == '[' && json.Unmarshal(rest, &elems) == nil {
 			out := make([][]byte, len(elems))
 			for i, e := range elems {
 				out[i] = e
 			}
 			return out
 		}
-	}
-	if len(rest) > 0 && rest[0] == '{' {
-		first, _, _ := bytes.Cut(rest, []byte("\n"))
-		if !json.Valid(bytes.TrimSpace(first)) {
-			return [][]byte{bytes.TrimSpace(rest)}
-		}
+		return [][]byte{bytes.TrimSpace(rest)}
 	}
 	lines := bytes.Split(body, []byte("\n"))
 	for i, l := range lines {

@@ -114,7 +114,9 @@ func (s *Source) connectOptions() ([]nats.Option, error) {
 		nats.MaxReconnects(-1),
 		nats.ReconnectWait(time.Second),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
-			s.log.Warn("disconnected from nats", "err", err)
+			if err != nil { // nil: closed on purpose
+				s.log.Warn("disconnected from nats", "err", err)
+			}
 		}),
 		nats.ReconnectHandler(func(nc *nats.Conn) {
 			s.log.Info("reconnected to nats", "server", RedactURL(nc.ConnectedUrl()))

@@ -459,3 +459,35 @@ func TestSourceNotReadyWithoutServer(t *testing.T) {
 		t.Errorf("source_up %v, want 1", n)
 	}
 }
+
+// TestBadFirstLineDoesNotSinkTheRest sends NDJSON whose first line is a
+// cut-off object — which, without a Content-Type header, looks like the
+// start of one JSON object spread over lines — and NDJSON declared by its
+// header: the good lines are stored and the bad one rejected alone.
+func TestBadFirstLineDoesNotSinkTheRest(t *testing.T) {
+	r := newRig(t, 0)
+	got := r.rejects(t)
+	r.start(t, nil, 0)
+	r.publish(t, predSubject, `{"model":"card-screen","id":"c1",`+"\n"+pred("c2", "2026-03-01T12:00:00Z", "fraud"))
+	m := nats.NewMsg(predSubject)
+	m.Header.Set("Content-Type", "application/x-ndjson")
+	m.Data = []byte(pred("c3", "2026-03-01T12:00:00Z", "legit") + "\n" + `{"model":`)
+	if _, err := r.js.PublishMsg(context.Background(), m); err != nil {
+		t.Fatal(err)
+	}
+	r.drained(t)
+	if _, p := cells(t, r.store); p["fraud"] != 1 || p["legit"] != 1 {
+		t.Errorf("predicted %v, want c2 and c3 stored", p)
+	}
+	waitFor(t, "rejection records", func() bool { return len(got()["cw.predictions.rejected"]) == 2 })
+	lines := map[int]string{}
+	for _, rec := range got()["cw.predictions.rejected"] {
+		lines[rec.Line] = rec.Original
+	}
+	if lines[1] != `{"model":"card-screen","id":"c1",` || lines[2] != `{"model":` {
+		t.Errorf("rejected lines %v, want line 1 of the first message and line 2 of the second", lines)
+	}
+	if n := metric(t, r.reg, "classwatch_jetstream_messages_refused_total"); n != 0 {
+		t.Errorf("%v messages refused, want none", n)
+	}
+}
