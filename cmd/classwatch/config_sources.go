@@ -29,7 +29,6 @@ type sourceConfig struct {
 
 	FetchMessages int      `yaml:"fetch_messages,omitempty"`
 	FetchBytes    byteSize `yaml:"fetch_bytes,omitempty"`
-	FetchWait     duration `yaml:"fetch_wait,omitempty"`
 	Workers       int      `yaml:"workers,omitempty"`
 	AckWait       duration `yaml:"ack_wait,omitempty"`
 	NakDelay      duration `yaml:"nak_delay,omitempty"`
@@ -100,7 +99,7 @@ func (s sourceConfig) natsConfig() natsjs.Config {
 		Name: s.Name, URL: s.URL, Stream: s.Stream,
 		PredictionsSubject: s.PredictionsSubject, LabelsSubject: s.LabelsSubject, Durable: s.Durable,
 		Token: s.token, User: s.User, Password: s.password, CredentialsFile: s.CredentialsFile,
-		FetchMessages: s.FetchMessages, FetchBytes: int(s.FetchBytes), FetchWait: time.Duration(s.FetchWait),
+		FetchMessages: s.FetchMessages, FetchBytes: int(s.FetchBytes),
 		Workers: s.Workers, AckWait: time.Duration(s.AckWait), NakDelay: time.Duration(s.NakDelay),
 	}
 	if s.TLS != nil {
@@ -185,9 +184,6 @@ func validateSourceTuning(p *problems, sp string, s sourceConfig) {
 	}
 	if s.Workers < 0 {
 		p.add(sp+".workers", "must not be negative (0 means %d)", natsjs.DefaultWorkers)
-	}
-	if s.FetchWait != 0 && time.Duration(s.FetchWait) < 10*time.Millisecond {
-		p.add(sp+".fetch_wait", "must be at least 10ms")
 	}
 	if s.AckWait != 0 && time.Duration(s.AckWait) < time.Second {
 		p.add(sp+".ack_wait", "must be at least 1s")

@@ -14,7 +14,6 @@ const (
 	DefaultName          = "nats"
 	DefaultFetchMessages = 64
 	DefaultFetchBytes    = 16 << 20
-	DefaultFetchWait     = time.Second
 	DefaultWorkers       = 4
 	DefaultAckWait       = 60 * time.Second
 	DefaultNakDelay      = 2 * time.Second
@@ -48,12 +47,11 @@ type Config struct {
 	CertFile string
 	KeyFile  string
 
-	// FetchMessages and FetchBytes bound one fetch from the consumer.
+	// FetchMessages and FetchBytes bound what a replica pulls ahead of its
+	// workers: the messages requested from the consumer and not yet
+	// handled.
 	FetchMessages int
 	FetchBytes    int
-	// FetchWait is how long one fetch waits for messages; it also bounds
-	// how long a shutdown waits for the fetch in progress.
-	FetchWait time.Duration
 	// Workers is how many messages are submitted at once.
 	Workers int
 	// AckWait is the consumer's redelivery timeout, set when the consumer
@@ -71,7 +69,6 @@ func (c Config) withDefaults() Config {
 	c.Name = cmp.Or(c.Name, DefaultName)
 	c.FetchMessages = cmp.Or(c.FetchMessages, DefaultFetchMessages)
 	c.FetchBytes = cmp.Or(c.FetchBytes, DefaultFetchBytes)
-	c.FetchWait = cmp.Or(c.FetchWait, DefaultFetchWait)
 	c.Workers = cmp.Or(c.Workers, DefaultWorkers)
 	c.AckWait = cmp.Or(c.AckWait, DefaultAckWait)
 	c.NakDelay = cmp.Or(c.NakDelay, DefaultNakDelay)
@@ -116,8 +113,8 @@ func (c Config) Check() error {
 	if c.FetchMessages < 1 || c.FetchBytes < 1 || c.Workers < 1 {
 		bad("fetch_messages, fetch_bytes and workers must be positive")
 	}
-	if c.FetchWait < 10*time.Millisecond || c.AckWait < time.Second || c.NakDelay < 0 || c.LagEvery < 0 {
-		bad("fetch_wait must be at least 10ms, ack_wait at least 1s; nak_delay must not be negative")
+	if c.AckWait < time.Second || c.NakDelay < 0 || c.LagEvery < 0 {
+		bad("ack_wait must be at least 1s; nak_delay must not be negative")
 	}
 	return errors.Join(errs...)
 }

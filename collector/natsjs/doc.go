@@ -22,9 +22,9 @@
 // stream is used as it is, but must capture both subjects and neither
 // .rejected subject. Every replica binds the same durable pull consumer
 // (key durable; explicit acks, unlimited deliveries), so JetStream hands
-// each message to one replica at a time. A replica fetches batches bounded
-// by fetch_messages and fetch_bytes and submits up to workers messages at
-// once:
+// each message to one replica at a time. A replica pulls continuously,
+// with at most fetch_messages messages and fetch_bytes bytes requested
+// ahead of its workers, and submits up to workers messages at once:
 //
 //   - committed (even if some lines were rejected): the rejected lines are
 //     published, then the message is acknowledged, and the ack is confirmed

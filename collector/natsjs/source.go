@@ -39,8 +39,12 @@ type Options struct {
 }
 
 // setupRetry is the pause between attempts to set up the stream and the
-// consumer while the server is unreachable.
-const setupRetry = 2 * time.Second
+// consumer while the server is unreachable; retryPause the pause after a
+// failed pull.
+const (
+	setupRetry = 2 * time.Second
+	retryPause = 500 * time.Millisecond
+)
 
 // Source consumes one stream through a durable pull consumer. Start runs
 // it; Stop stops fetching, finishes the messages in hand and closes the
@@ -207,13 +211,10 @@ func (s *Source) Stop(ctx context.Context) error {
 	return err
 }
 
-// run sets up the stream and consumer, then fetches until fetchCtx ends
-// and hands each message to a worker.
+// run sets up the stream and consumer, then pulls messages until
+// fetchCtx ends and hands each to a worker. A consumer that disappears
+// (deleted, or the server lost its state) is set up again.
 func (s *Source) run(fetchCtx, workCtx context.Context) {
-	cons := s.setupLoop(fetchCtx)
-	if cons == nil {
-		return
-	}
 	work := make(chan jetstream.Msg)
 	var wg sync.WaitGroup
 	for range s.cfg.Workers {
@@ -223,38 +224,62 @@ func (s *Source) run(fetchCtx, workCtx context.Context) {
 			}
 		})
 	}
-	wg.Go(func() { s.lagLoop(fetchCtx, cons) })
-
 	for fetchCtx.Err() == nil {
-		batch, err := cons.Fetch(s.cfg.FetchMessages,
-			jetstream.FetchMaxBytes(s.cfg.FetchBytes), jetstream.FetchMaxWait(s.cfg.FetchWait))
-		if err != nil {
-			s.fetchFailed(fetchCtx, err)
-			continue
+		cons := s.setupLoop(fetchCtx)
+		if cons == nil {
+			break
 		}
-		for msg := range batch.Messages() {
-			work <- msg
-		}
-		if err := batch.Error(); err != nil && !errors.Is(err, nats.ErrTimeout) && !errors.Is(err, jetstream.ErrNoMessages) {
-			s.fetchFailed(fetchCtx, err)
-		} else {
-			s.setReady(nil)
-		}
+		lagCtx, stopLag := context.WithCancel(fetchCtx)
+		lagDone := make(chan struct{})
+		go func() { s.lagLoop(lagCtx, cons); close(lagDone) }()
+		s.pull(fetchCtx, cons, work)
+		stopLag()
+		<-lagDone
 	}
 	close(work)
 	wg.Wait()
 }
 
-// fetchFailed notes a failed fetch and pauses before the next one.
+// pull feeds work from a continuous pull, which keeps up to
+// FetchMessages messages and FetchBytes bytes requested ahead, until ctx
+// ends (the messages already pulled are still handed out) or the consumer
+// is gone.
+func (s *Source) pull(ctx context.Context, cons jetstream.Consumer, work chan<- jetstream.Msg) {
+	it, err := cons.Messages(jetstream.PullMaxMessagesWithBytesLimit(s.cfg.FetchMessages, s.cfg.FetchBytes))
+	if err != nil {
+		s.fetchFailed(ctx, err)
+		return
+	}
+	stop := context.AfterFunc(ctx, it.Drain)
+	defer stop()
+	for {
+		msg, err := it.Next()
+		switch {
+		case errors.Is(err, jetstream.ErrMsgIteratorClosed):
+			return
+		case errors.Is(err, jetstream.ErrConsumerDeleted) || errors.Is(err, jetstream.ErrConsumerNotFound):
+			it.Stop()
+			s.fetchFailed(ctx, err)
+			return
+		case err != nil:
+			s.fetchFailed(ctx, err)
+			continue
+		}
+		s.setReady(nil)
+		work <- msg
+	}
+}
+
+// fetchFailed notes a failed pull and pauses before the next one.
 func (s *Source) fetchFailed(ctx context.Context, err error) {
 	if ctx.Err() != nil {
 		return
 	}
-	s.log.Warn("fetch from stream", "err", err)
+	s.log.Warn("pull from stream", "err", err)
 	if !s.nc.IsConnected() {
 		s.setReady(errors.New("not connected to nats"))
 	}
-	sleep(ctx, s.cfg.FetchWait)
+	sleep(ctx, retryPause)
 }
 
 // setupLoop retries setup until it succeeds or ctx ends (nil then).

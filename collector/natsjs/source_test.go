@@ -94,7 +94,7 @@ func (r *rig) start(t *testing.T, sub natsjs.Submitter, maxBody int64) *natsjs.S
 	src, err := natsjs.New(natsjs.Options{
 		Config: natsjs.Config{
 			URL: r.srv.URL, Stream: "CW", PredictionsSubject: predSubject, LabelsSubject: labelSubject,
-			Durable: "cw", FetchWait: 100 * time.Millisecond, NakDelay: 50 * time.Millisecond, LagEvery: 50 * time.Millisecond,
+			Durable: "cw", NakDelay: 50 * time.Millisecond, LagEvery: 50 * time.Millisecond,
 		},
 		Submitter:    sub,
 		MaxBodyBytes: maxBody,
