@@ -41,6 +41,7 @@ func TestStreamSameAsHTTP(t *testing.T) {
 	if testing.Short() {
 		t.Skip("builds and runs the binary; skipped with -short")
 	}
+	t.Parallel()
 	fx := loadE2EFixture(t)
 	srv := natstest.Start(t)
 	bin := buildBinary(t)
@@ -210,6 +211,7 @@ func TestStreamReplicasSurviveKill(t *testing.T) {
 	if testing.Short() {
 		t.Skip("builds and runs the binary; skipped with -short")
 	}
+	t.Parallel()
 	fx := loadE2EFixture(t)
 	srv := natstest.Start(t)
 	bin := buildBinary(t)
@@ -250,6 +252,7 @@ func TestStreamSurvivesDatabaseOutage(t *testing.T) {
 	if testing.Short() {
 		t.Skip("builds and runs the binary; skipped with -short")
 	}
+	t.Parallel()
 	fx := loadE2EFixture(t)
 	srv := natstest.Start(t)
 	bin := buildBinary(t)

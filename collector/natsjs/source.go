@@ -93,11 +93,8 @@ func New(opts Options) (*Source, error) {
 		done:     make(chan struct{}),
 	}
 	s.m.initSource(cfg.Name)
-	copts, err := s.connectOptions()
-	if err != nil {
-		return nil, fmt.Errorf("source %s: %w", cfg.Name, err)
-	}
-	s.nc, err = nats.Connect(cfg.URL, copts...)
+	var err error
+	s.nc, err = nats.Connect(cfg.URL, s.connectOptions()...)
 	if err != nil {
 		return nil, fmt.Errorf("source %s: connect: %w", cfg.Name, err)
 	}
@@ -110,7 +107,7 @@ func New(opts Options) (*Source, error) {
 }
 
 // connectOptions maps the configuration onto the client's options.
-func (s *Source) connectOptions() ([]nats.Option, error) {
+func (s *Source) connectOptions() []nats.Option {
 	c := s.cfg
 	opts := []nats.Option{
 		nats.Name("classwatch " + c.Name),
@@ -140,7 +137,7 @@ func (s *Source) connectOptions() ([]nats.Option, error) {
 	if c.CertFile != "" {
 		opts = append(opts, nats.ClientCert(c.CertFile, c.KeyFile))
 	}
-	return opts, nil
+	return opts
 }
 
 // Name is the source's name, its metrics' source label.
