@@ -46,6 +46,12 @@ var ErrUnavailable = errors.New("store unavailable")
 // ErrUnknownModel is returned by reads for a model the store has never seen.
 var ErrUnknownModel = errors.New("unknown model")
 
+// ErrLimit is returned for a batch that would pass a documented limit of
+// the store (see the backend's package documentation). Nothing of the
+// batch is kept, and the same batch fails the same way again: callers
+// refuse it instead of asking for a retry.
+var ErrLimit = errors.New("store limit exceeded")
+
 // ErrTooManyClasses is returned by EnsureModel when registering would exceed
 // the model's class limit.
 var ErrTooManyClasses = errors.New("too many classes")
@@ -338,7 +344,10 @@ type Store interface {
 
 	// ApplyLabelTimeout gives every stored prediction of model with no label
 	// version and At+timeout ≤ now an implied version (actual = label,
-	// at = At+timeout). It returns how many it labeled.
+	// at = At+timeout). It returns how many it labeled. A backend may
+	// bound the work of one call (pgstore: the predictions of at most 32
+	// days, see its package documentation) and leave the rest to later
+	// calls; callers call it periodically.
 	ApplyLabelTimeout(ctx context.Context, model, label string, timeout time.Duration, now time.Time) (int64, Changes, error)
 	// ExpireEarlyLabels drops early labels of model received at or before
 	// now−ttl whose prediction never arrived, and returns how many.

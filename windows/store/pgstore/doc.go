@@ -83,6 +83,22 @@
 // predictions are row deletes, found through the BRIN index; autovacuum
 // reclaims the space for new rows.
 //
+// # Limits
+//
+// label_versions gets a day partition only when a version is written into
+// that day (a label joined, an early label joining its prediction, an
+// implied label): predictions alone create none, however far back their
+// times reach. One batch, and one ApplyLabelTimeout call, creates at most
+// 32 new day partitions (maxNewDays). A batch that would need more is
+// refused with store.ErrLimit and keeps nothing; the same batch fails the
+// same way again, so callers answer it as bad input, not with a retry.
+// ApplyLabelTimeout labels the predictions of at most 32 days per call,
+// oldest first, and leaves the rest to the next calls. PurgeRaw drops day
+// partitions eight per transaction: dropping one locks label_versions
+// against every ingest, so the drops go in short transactions with ingest
+// between them. Predictions older than a model's retention are the usual
+// cause of far-past days.
+//
 // # Distributed deployment
 //
 // Past one PostgreSQL the schema is meant for a distributed

@@ -38,6 +38,15 @@ func (v *versionRows) add(model int32, bucket time.Time, pkey int64, seq int32, 
 	v.actuals = append(v.actuals, actual)
 }
 
+// days returns the (model, day) of each version.
+func (v *versionRows) days() []modelDay {
+	out := make([]modelDay, len(v.models))
+	for i := range out {
+		out[i] = modelDay{v.models[i], dayOf(v.buckets[i]).UnixMicro()}
+	}
+	return out
+}
+
 // copy writes the versions, in key order so that neighbouring index
 // inserts share pages.
 func (v *versionRows) copy(ctx context.Context, tx conn) error {
@@ -149,20 +158,13 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 	for i, l := range batch {
 		lineKey[i] = index[labelKey{ids[l.Model], l.ID}]
 	}
-	var (
-		t    *tally
-		days []modelDay // the days the last attempt wrote to
-	)
+	var t *tally
 	err = s.retry(ctx, func() error {
-		// A day partition dropped by another daemon's purge (only a
-		// prediction that arrived after the purge can be labeled there) fails
-		// an attempt; the retry then recreates it.
-		if err := s.ensureDays(ctx, days); err != nil {
-			return err
-		}
-		t = newTally()
-		return s.inTx(ctx, func(c *pgx.Conn) error {
-			return s.applyLabels(ctx, c, batch, ids, keys, lineKey, micro(now), res.Outcomes, t, &days)
+		return s.withDays(ctx, func() error {
+			t = newTally()
+			return s.inTx(ctx, func(c *pgx.Conn) error {
+				return s.applyLabels(ctx, c, batch, ids, keys, lineKey, micro(now), res.Outcomes, t)
+			})
 		})
 	})
 	if err != nil {
@@ -175,19 +177,19 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 // applyLabels is one attempt at the label transaction: keys are the
 // batch's distinct (model, id) pairs and lineKey the key of each line.
 func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Label, ids map[string]int32,
-	keys []labelKey, lineKey []int, now time.Time, out []store.LabelOutcome, t *tally, days *[]modelDay) error {
+	keys []labelKey, lineKey []int, now time.Time, out []store.LabelOutcome, t *tally) error {
 	targets, err := s.findTargets(ctx, tx, ids, keys)
 	if err != nil {
 		return err
 	}
-	*days = (*days)[:0]
+	var days []modelDay
 	for _, tg := range targets {
-		if tg == nil {
-			continue
+		if tg != nil {
+			days = append(days, modelDay{tg.model, dayOf(tg.bucket).UnixMicro()})
 		}
-		if md := (modelDay{tg.model, dayOf(tg.bucket).UnixMicro()}); !slices.Contains(*days, md) {
-			*days = append(*days, md)
-		}
+	}
+	if err := s.needDays(days); err != nil {
+		return err
 	}
 	if err := readVersions(ctx, tx, targets); err != nil {
 		return err
@@ -454,61 +456,68 @@ func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, time
 		return 0, store.Changes{}, err
 	}
 	var (
-		n    int64
-		t    *tally
-		days []modelDay
+		n int64
+		t *tally
 	)
 	err = s.retry(ctx, func() error {
-		if err := s.ensureDays(ctx, days); err != nil {
-			return err
-		}
-		n, t = 0, newTally()
-		return pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
-			if _, err := tx.Exec(ctx, sqlLockModels, s.keys.label, []int32{id}); err != nil {
+		return s.withDays(ctx, func() error {
+			n, t = 0, newTally()
+			return pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) (err error) {
+				n, err = s.applyTimeout(ctx, tx, id, due, timeout, label, t)
 				return err
-			}
-			var purged *time.Time
-			if err := tx.QueryRow(ctx, sqlPurgedBefore, id).Scan(&purged); err != nil {
-				return err
-			}
-			rows, err := tx.Query(ctx, sqlIncompleteBuckets, id, due, purged)
-			if err != nil {
-				return err
-			}
-			buckets, err := pgx.CollectRows(rows, pgx.RowTo[time.Time])
-			if err != nil || len(buckets) == 0 {
-				return err
-			}
-			days = days[:0]
-			for _, b := range buckets {
-				if md := (modelDay{id, dayOf(b).UnixMicro()}); !slices.Contains(days, md) {
-					days = append(days, md)
-				}
-			}
-			rows, err = tx.Query(ctx, sqlApplyTimeout, id, buckets, buckets[0], buckets[len(buckets)-1], due, timeout, label)
-			if err != nil {
-				return err
-			}
-			var (
-				bucket             time.Time
-				segment, predicted string
-				count              int64
-			)
-			_, err = pgx.ForEachRow(rows, []any{&bucket, &segment, &predicted, &count}, func() error {
-				t.addCell(id, bucket, segment, label, predicted, count)
-				n += count
-				return nil
 			})
-			if err != nil {
-				return err
-			}
-			return t.write(ctx, tx)
 		})
 	})
 	if err != nil {
 		return 0, store.Changes{}, unavailable("apply label timeout", err)
 	}
 	return n, t.changes(map[int32]string{id: model}), nil
+}
+
+// applyTimeout is one attempt at ApplyLabelTimeout's transaction. It
+// labels the due buckets of the first maxNewDays days that hold any; the
+// buckets of later days wait for the next call, so one call creates a
+// bounded number of partitions however far back the unlabeled predictions
+// reach.
+func (s *Store) applyTimeout(ctx context.Context, tx pgx.Tx, id int32, due time.Time, timeout time.Duration, label string, t *tally) (int64, error) {
+	if _, err := tx.Exec(ctx, sqlLockModels, s.keys.label, []int32{id}); err != nil {
+		return 0, err
+	}
+	var purged *time.Time
+	if err := tx.QueryRow(ctx, sqlPurgedBefore, id).Scan(&purged); err != nil {
+		return 0, err
+	}
+	rows, err := tx.Query(ctx, sqlIncompleteBuckets, id, due, purged)
+	if err != nil {
+		return 0, err
+	}
+	buckets, err := pgx.CollectRows(rows, pgx.RowTo[time.Time])
+	if err != nil || len(buckets) == 0 {
+		return 0, err
+	}
+	buckets, days := boundDays(id, buckets)
+	if err := s.needDays(days); err != nil {
+		return 0, err
+	}
+	rows, err = tx.Query(ctx, sqlApplyTimeout, id, buckets, buckets[0], buckets[len(buckets)-1], due, timeout, label)
+	if err != nil {
+		return 0, err
+	}
+	var (
+		n                  int64
+		bucket             time.Time
+		segment, predicted string
+		count              int64
+	)
+	_, err = pgx.ForEachRow(rows, []any{&bucket, &segment, &predicted, &count}, func() error {
+		t.addCell(id, bucket, segment, label, predicted, count)
+		n += count
+		return nil
+	})
+	if err != nil {
+		return 0, err
+	}
+	return n, t.write(ctx, tx)
 }
 
 // ExpireEarlyLabels drops early labels received at or before now−ttl; see

@@ -2,16 +2,30 @@ package pgstore
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"slices"
 	"time"
 
 	"github.com/jackc/pgx/v5"
+
+	"github.com/classwatch/classwatch/windows/store"
 )
 
 // day is the width of a label_versions partition: the UTC day of the
 // prediction's bucket start.
 const day = 24 * time.Hour
+
+// maxNewDays bounds the label-history day partitions one batch (a
+// prediction or label batch, or one ApplyLabelTimeout call) may create. A
+// batch that needs more is refused with store.ErrLimit; see the package
+// documentation.
+const maxNewDays = 32
+
+// dropChunk is how many day partitions one transaction of PurgeRaw drops:
+// dropping a partition locks the whole label_versions table against every
+// ingest, so the drops go in short transactions, with ingest between them.
+const dropChunk = 8
 
 // modelDay is one model's rows in one day's partition.
 type modelDay struct {
@@ -25,10 +39,74 @@ func dayOf(t time.Time) time.Time { return t.UTC().Truncate(day) }
 // partitionName names the label_versions partition of day d.
 func partitionName(d time.Time) string { return "label_versions_" + d.Format("20060102") }
 
+// missingDays is the error of an ingest attempt that is about to write
+// label versions into days this process has not ensured: withDays ensures
+// them and runs the attempt again.
+type missingDays struct{ days []modelDay }
+
+func (m *missingDays) Error() string {
+	return fmt.Sprintf("%d label history days not ensured", len(m.days))
+}
+
+// needDays returns a *missingDays naming those of days (repeats allowed)
+// this process has not ensured, or nil.
+func (s *Store) needDays(days []modelDay) error {
+	s.mu.Lock()
+	defer s.mu.Unlock()
+	var miss []modelDay
+	for _, md := range days {
+		if !s.days[md] && !slices.Contains(miss, md) {
+			miss = append(miss, md)
+		}
+	}
+	if len(miss) == 0 {
+		return nil
+	}
+	return &missingDays{miss}
+}
+
+// withDays runs attempt, a transaction that writes label versions only
+// into days it has checked with needDays. When an attempt stops for
+// missing days, withDays creates them (ensureDays, which refuses more than
+// maxNewDays new partitions) and runs it again. So partitions are created
+// only for days a batch really writes to, and never inside an ingest
+// transaction.
+func (s *Store) withDays(ctx context.Context, attempt func() error) error {
+	var err error
+	for range maxAttempts {
+		err = attempt()
+		var md *missingDays
+		if !errors.As(err, &md) {
+			return err
+		}
+		if err := s.ensureDays(ctx, md.days); err != nil {
+			return err
+		}
+	}
+	return err
+}
+
+// boundDays keeps the buckets (ascending) of the first maxNewDays days
+// among them, and returns them with their days.
+func boundDays(model int32, buckets []time.Time) ([]time.Time, []modelDay) {
+	var days []modelDay
+	for i, b := range buckets {
+		md := modelDay{model, dayOf(b).UnixMicro()}
+		if !slices.Contains(days, md) {
+			if len(days) == maxNewDays {
+				return buckets[:i], days
+			}
+			days = append(days, md)
+		}
+	}
+	return buckets, days
+}
+
 // ensureDays makes sure the day partitions of need exist and that
 // raw_partitions lists each (model, day), in a short transaction of its
 // own: creating a partition takes a strong lock on the parent table, which
-// must not be held by an ingest transaction. A process remembers what it
+// must not be held by an ingest transaction. It refuses to create more
+// than maxNewDays partitions (store.ErrLimit). A process remembers what it
 // ensured, so a steady stream of batches skips this step.
 func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 	s.mu.Lock()
@@ -59,6 +137,10 @@ func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 		if err != nil {
 			return err
 		}
+		if len(missing) > maxNewDays {
+			return fmt.Errorf("batch needs %d new label history day partitions, more than the %d one batch may create: %w",
+				len(missing), maxNewDays, store.ErrLimit)
+		}
 		for _, d := range days {
 			name := partitionName(d)
 			if !slices.Contains(missing, name) {
@@ -74,6 +156,9 @@ func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 		_, err = tx.Exec(ctx, sqlAddDays, models, days)
 		return err
 	})
+	if errors.Is(err, store.ErrLimit) {
+		return err
+	}
 	if err != nil {
 		return fmt.Errorf("create day partitions: %w", err)
 	}
@@ -86,39 +171,51 @@ func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 }
 
 // dropDays drops the partitions of every day whose models have all purged
-// past it, in a transaction of its own.
+// past it, dropChunk days per transaction.
 func (s *Store) dropDays(ctx context.Context) error {
-	var dropped []time.Time
-	err := pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
-		dropped = dropped[:0]
-		if _, err := tx.Exec(ctx, sqlLockXact, s.keys.ddl); err != nil {
-			return err
-		}
-		rows, err := tx.Query(ctx, sqlDroppableDays)
+	for {
+		var dropped []time.Time
+		err := s.retry(ctx, func() error {
+			dropped = dropped[:0]
+			return pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
+				return dropSomeDays(ctx, tx, s.keys.ddl, &dropped)
+			})
+		})
 		if err != nil {
 			return err
 		}
-		days, err := pgx.CollectRows(rows, pgx.RowTo[time.Time])
-		if err != nil {
-			return err
+		s.forgetDays(func(md modelDay) bool {
+			return slices.ContainsFunc(dropped, func(d time.Time) bool { return d.UnixMicro() == md.day })
+		})
+		if len(dropped) < dropChunk {
+			return nil
 		}
-		for _, d := range days {
-			if _, err := tx.Exec(ctx, "DROP TABLE IF EXISTS "+pgx.Identifier{partitionName(d)}.Sanitize()); err != nil {
-				return err
-			}
-			if _, err := tx.Exec(ctx, sqlForgetDayAll, d); err != nil {
-				return err
-			}
-			dropped = append(dropped, d)
-		}
-		return nil
-	})
+	}
+}
+
+// dropSomeDays drops up to dropChunk droppable days, oldest first, and
+// records them in dropped.
+func dropSomeDays(ctx context.Context, tx pgx.Tx, ddlKey int32, dropped *[]time.Time) error {
+	if _, err := tx.Exec(ctx, sqlLockXact, ddlKey); err != nil {
+		return err
+	}
+	rows, err := tx.Query(ctx, sqlDroppableDays, dropChunk)
 	if err != nil {
 		return err
 	}
-	s.forgetDays(func(md modelDay) bool {
-		return slices.ContainsFunc(dropped, func(d time.Time) bool { return d.UnixMicro() == md.day })
-	})
+	days, err := pgx.CollectRows(rows, pgx.RowTo[time.Time])
+	if err != nil {
+		return err
+	}
+	for _, d := range days {
+		if _, err := tx.Exec(ctx, "DROP TABLE IF EXISTS "+pgx.Identifier{partitionName(d)}.Sanitize()); err != nil {
+			return err
+		}
+		if _, err := tx.Exec(ctx, sqlForgetDayAll, d); err != nil {
+			return err
+		}
+		*dropped = append(*dropped, d)
+	}
 	return nil
 }
 

@@ -78,23 +78,13 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 	if err != nil {
 		return res, err
 	}
-	var need []modelDay
-	seen := map[modelDay]bool{}
-	for i := range lines {
-		md := modelDay{lines[i].model, dayOf(lines[i].bucket).UnixMicro()}
-		if !seen[md] {
-			seen[md] = true
-			need = append(need, md)
-		}
-	}
 	var t *tally
 	err = s.retry(ctx, func() error {
-		if err := s.ensureDays(ctx, need); err != nil {
-			return err
-		}
-		t = newTally()
-		return s.inTx(ctx, func(c *pgx.Conn) error {
-			return s.storePredictions(ctx, c, lines, sortedModels(ids), t)
+		return s.withDays(ctx, func() error {
+			t = newTally()
+			return s.inTx(ctx, func(c *pgx.Conn) error {
+				return s.storePredictions(ctx, c, lines, sortedModels(ids), t)
+			})
 		})
 	})
 	if err != nil {
@@ -249,6 +239,9 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 	if early {
 		var v versionRows
 		if err := takeEarly(ctx, tx, fresh, &v, t); err != nil {
+			return err
+		}
+		if err := s.needDays(v.days()); err != nil {
 			return err
 		}
 		if err := v.copy(ctx, tx); err != nil {

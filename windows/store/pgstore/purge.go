@@ -95,7 +95,7 @@ func (s *Store) PurgeRaw(ctx context.Context, model string, cutoff time.Time) (i
 		}
 		return false
 	})
-	if err := s.retry(ctx, func() error { return s.dropDays(ctx) }); err != nil {
+	if err := s.dropDays(ctx); err != nil {
 		return n, unavailable("drop purged day partitions", err)
 	}
 	return n, nil

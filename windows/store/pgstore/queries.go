@@ -169,7 +169,8 @@ FROM raw_partitions r WHERE r.model_id = $1 AND r.day < $2`
 	// sqlDroppableDays lists days whose every model has purged past the day.
 	sqlDroppableDays = `SELECT r.day FROM raw_partitions r JOIN models m ON m.model_id = r.model_id
 GROUP BY r.day
-HAVING bool_and(m.purged_before IS NOT NULL AND m.purged_before >= r.day + interval '1 day')`
+HAVING bool_and(m.purged_before IS NOT NULL AND m.purged_before >= r.day + interval '1 day')
+ORDER BY r.day LIMIT $1`
 	sqlForgetDayAll = `DELETE FROM raw_partitions WHERE day = $1`
 	sqlMissingRel   = `SELECT n FROM unnest($1::text[]) AS n WHERE to_regclass(quote_ident(n)) IS NULL`
 	sqlAddDays      = `INSERT INTO raw_partitions (model_id, day)

@@ -169,7 +169,8 @@ var errBadInput = errors.New("bad input")
 // unavailable wraps a database failure with store.ErrUnavailable, so
 // callers can tell it from bad input. Errors about the input pass through.
 func unavailable(op string, err error) error {
-	if errors.Is(err, store.ErrUnknownModel) || errors.Is(err, store.ErrTooManyClasses) || errors.Is(err, errBadInput) {
+	if errors.Is(err, store.ErrUnknownModel) || errors.Is(err, store.ErrTooManyClasses) || errors.Is(err, errBadInput) ||
+		errors.Is(err, store.ErrLimit) {
 		return err
 	}
 	return fmt.Errorf("%s: %w: %w", op, store.ErrUnavailable, err)
