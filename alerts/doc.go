@@ -30,6 +30,31 @@
 //     which needs no labels) distribution against the reference's, by a
 //     chi-square or G test of homogeneity (sparse classes pooled) and/or
 //     the population stability index.
+//   - estimated_prevalence_shift: early warning without labels. Per class,
+//     the prevalence estimated from the window's predicted mix by
+//     black-box shift estimation against the reference's labeled matrix
+//     (Lipton, Wang & Smola 2018; windows/stats BBSE) differs from the
+//     reference's actual prevalence by more than margin: a two-sided z-test
+//     of the unclipped estimate minus the reference prevalence, whose
+//     variance adds the estimate's delta-method variance (the reference
+//     matrix taken as a sample) and the binomial variance of the reference
+//     prevalence, Benjamini–Hochberg across the rule's classes. The two
+//     rest on the same reference examples and move together, so the sum
+//     overstates the variance and the test errs towards silence (the
+//     tests measure its false alarms by simulation under pure label
+//     shift). It assumes P(predicted | actual) is unchanged (label shift);
+//     a model whose errors change too misleads it.
+//   - score_shift: early warning without labels. Per class, the histogram
+//     of the class's score (10 equal-width bins) in the window against the
+//     reference's, by a chi-square or G test of homogeneity (sparse bins
+//     pooled), Benjamini–Hochberg across the rule's classes; the figure
+//     is the Jensen–Shannon distance (Lin 1991), and threshold, when set,
+//     also requires the distance to reach it. Predictions without scores
+//     count nowhere.
+//   - a ceiling on calibration_error (the expected calibration error of
+//     the predicted class's score, README.md "Early warning"), or on
+//     brier, is a ceiling rule with interval: none; min_count counts the
+//     labeled predictions with scores.
 //   - cusum: a Bernoulli CUSUM over the matured buckets of a per-class
 //     proportion, tuned to a wanted mean time between false alarms (see
 //     "CUSUM" below).
@@ -57,6 +82,8 @@
 //	confusion_rise    reference, pairs [{actual, predicted}], margin
 //	prevalence_shift  reference, test (chi_square, g_test, none), psi_threshold
 //	output_shift      reference, test, psi_threshold
+//	estimated_prevalence_shift  reference, classes, margin
+//	score_shift       reference, classes, test (chi_square, g_test, none), threshold
 //	cusum             metric (recall, precision, specificity, prevalence; default recall),
 //	                  classes, direction (down, up; default down), lag,
 //	                  reference or expected, shift, false_alarm_every

@@ -68,11 +68,13 @@ func view(in Input, window string) (windows.View, error) {
 	return v, nil
 }
 
-// period is a matrix and predicted-class counts over [from, to).
+// period is a matrix, predicted-class counts and score aggregates (nil
+// when unknown) over [from, to).
 type period struct {
 	from, to time.Time
 	m        *windows.Matrix
 	pred     []int64
+	scores   *windows.ScoreSums
 }
 
 // periods reads the rule's window and its reference period, aligned to
@@ -82,7 +84,7 @@ func periods(ctx context.Context, in Input, r *Rule) (cur, ref period, err error
 	if err != nil {
 		return period{}, period{}, err
 	}
-	cur = period{from: v.From, to: v.To, m: v.Matrix, pred: v.Predicted}
+	cur = period{from: v.From, to: v.To, m: v.Matrix, pred: v.Predicted, scores: v.Scores}
 	ref, err = reference(ctx, in, r, &cur)
 	if err != nil {
 		return period{}, period{}, fmt.Errorf("read reference %s: %w", r.Reference, err)
@@ -102,7 +104,7 @@ func reference(ctx context.Context, in Input, r *Rule, cur *period) (period, err
 		if err != nil {
 			return period{}, err
 		}
-		p := period{from: v.From, to: v.To, m: v.Matrix, pred: v.Predicted}
+		p := period{from: v.From, to: v.To, m: v.Matrix, pred: v.Predicted, scores: v.Scores}
 		if err := align(cur, &p); err != nil {
 			return period{}, err
 		}
@@ -120,10 +122,11 @@ func reference(ctx context.Context, in Input, r *Rule, cur *period) (period, err
 		for i := range p.pred {
 			p.pred[i] -= cur.pred[i]
 		}
+		p.scores = subScores(p.scores, cur.scores)
 		return p, nil
 	}
 	classes := in.Model.Classes
-	p := period{from: ref.From, to: ref.To, m: windows.NewMatrix(classes), pred: make([]int64, len(classes))}
+	p := period{from: ref.From, to: ref.To, m: windows.NewMatrix(classes), pred: make([]int64, len(classes)), scores: windows.NewScoreSums(len(classes))}
 	pieces := [][2]time.Time{{ref.From, ref.To}}
 	if overlaps(p, *cur) {
 		pieces = [][2]time.Time{{ref.From, minTime(ref.To, cur.from)}, {maxTime(ref.From, cur.to), ref.To}}
@@ -146,6 +149,11 @@ func reference(ctx context.Context, in Input, r *Rule, cur *period) (period, err
 		for i := range pp {
 			p.pred[i] += pp[i]
 		}
+		ps, err := windows.ScoresFromCounts(classes, counts)
+		if err != nil {
+			return period{}, err
+		}
+		p.scores = addScores(p.scores, ps, 1)
 	}
 	return p, align(cur, &p)
 }
@@ -167,8 +175,39 @@ func align(a, b *period) error {
 	}
 	short.m = g
 	short.pred = append(slices.Clone(short.pred), make([]int64, len(long.pred)-len(short.pred))...)
+	if short.scores != nil {
+		short.scores = addScores(windows.NewScoreSums(len(long.pred)), short.scores, 1)
+	}
 	return nil
 }
+
+// addScores returns a + sign·b as new sums over a's classes (b may have
+// fewer); nil when either is unknown.
+func addScores(a, b *windows.ScoreSums, sign int64) *windows.ScoreSums {
+	if a == nil || b == nil {
+		return nil
+	}
+	out := windows.NewScoreSums(len(a.Hist))
+	copy(out.Hist, a.Hist)
+	out.Calib, out.BrierN, out.BrierSum = a.Calib, a.BrierN, a.BrierSum
+	for k := range min(len(a.Hist), len(b.Hist)) {
+		for bin := range out.Hist[k] {
+			out.Hist[k][bin] += sign * b.Hist[k][bin]
+		}
+	}
+	for bin := range out.Calib {
+		out.Calib[bin].N += sign * b.Calib[bin].N
+		out.Calib[bin].ScoreSum += float64(sign) * b.Calib[bin].ScoreSum
+		out.Calib[bin].Correct += sign * b.Calib[bin].Correct
+	}
+	out.BrierN += sign * b.BrierN
+	out.BrierSum += float64(sign) * b.BrierSum
+	return out
+}
+
+// subScores returns a − b, the reference's sums without the current
+// period's.
+func subScores(a, b *windows.ScoreSums) *windows.ScoreSums { return addScores(a, b, -1) }
 
 // classIndexes returns the positions of the rule's classes in classes, or
 // all positions when the rule names none. A named class the model lacks is

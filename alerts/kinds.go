@@ -117,6 +117,14 @@ var kinds = map[Kind]kindSpec{
 		keys: shiftKeys, window: true, reference: true,
 		defaults: shiftDefaults, build: newShift(false), describe: describeShift("predicted-class mix"),
 	},
+	KindEstimatedPrevalenceShift: {
+		keys: []string{"classes", "margin", "reference"}, window: true, reference: true,
+		build: newEstimatedShift, describe: describeEstimatedShift,
+	},
+	KindScoreShift: {
+		keys: []string{"classes", "reference", "test", "threshold"}, window: true, reference: true,
+		defaults: scoreShiftDefaults, build: newScoreShift, describe: describeScoreShift,
+	},
 	KindCUSUM: {
 		keys: cusumKeys, lookback: func(r *Rule) time.Duration { return r.Lag + cusumHorizon },
 		defaults: cusumDefaults, build: newCUSUM, describe: describeCUSUM,

@@ -42,6 +42,14 @@ const (
 	// KindNoTraffic fires when no prediction from a model arrived for a
 	// duration.
 	KindNoTraffic Kind = "no_traffic"
+	// KindEstimatedPrevalenceShift fires when a class's prevalence,
+	// estimated from the window's predicted mix without labels, differs
+	// from the reference's actual prevalence by more than a margin beyond
+	// the estimate's uncertainty.
+	KindEstimatedPrevalenceShift Kind = "estimated_prevalence_shift"
+	// KindScoreShift fires when a class's score distribution in the window
+	// differs from the reference's.
+	KindScoreShift Kind = "score_shift"
 	// KindCUSUM fires when a Bernoulli CUSUM over the matured buckets of a
 	// per-class proportion crosses the threshold that gives the wanted
 	// mean time between false alarms.
