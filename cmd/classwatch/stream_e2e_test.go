@@ -289,3 +289,29 @@ func TestStreamSurvivesDatabaseOutage(t *testing.T) {
 	checkFinalFigures(t, bin, cfg, d.url, fx)
 	d.stop(t)
 }
+
+// TestStreamReadiness checks that /readyz answers 503 naming the source
+// (and no host) while NATS cannot be reached, and 200 once it can.
+func TestStreamReadiness(t *testing.T) {
+	if testing.Short() {
+		t.Skip("builds and runs the binary; skipped with -short")
+	}
+	t.Parallel()
+	fx := loadE2EFixture(t)
+	srv := natstest.Start(t)
+	srv.Stop()
+	bin := buildBinary(t)
+	cfg := writeE2EConfig(t, fx, "")
+	addSource(t, cfg, srv.URL, "")
+	d := startDaemon(t, bin, cfg)
+	var body struct {
+		Error string `json:"error"`
+	}
+	getJSON(t, d.url+"/readyz", 503, &body)
+	if !strings.Contains(body.Error, "source nats") || strings.Contains(body.Error, "127.0.0.1") {
+		t.Errorf("/readyz error %q, want it to name the source and no host", body.Error)
+	}
+	srv.Restart()
+	waitReady(t, d.url)
+	d.stop(t)
+}
