@@ -491,3 +491,35 @@ func TestBadFirstLineDoesNotSinkTheRest(t *testing.T) {
 		t.Errorf("%v messages refused, want none", n)
 	}
 }
+
+// TestStreamThatCapturesRejectsIsRefused: rejected lines published back
+// into the input stream would come round again, so a source refuses an
+// existing stream whose subjects take the .rejected subjects, and says so.
+func TestStreamThatCapturesRejectsIsRefused(t *testing.T) {
+	r := newRig(t, 0)
+	_, err := r.js.CreateStream(context.Background(), jetstream.StreamConfig{Name: "CW", Subjects: []string{"cw.>"}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, err := natsjs.NewMetrics(r.reg)
+	if err != nil {
+		t.Fatal(err)
+	}
+	src, err := natsjs.New(natsjs.Options{
+		Config:    natsjs.Config{URL: r.srv.URL, Stream: "CW", PredictionsSubject: predSubject, LabelsSubject: labelSubject, Durable: "cw"},
+		Submitter: r.col,
+		Metrics:   m,
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	src.Start(context.Background())
+	t.Cleanup(func() { _ = src.Stop(context.Background()) })
+	waitFor(t, "the setup error", func() bool {
+		err := src.Ready(context.Background())
+		return err != nil && strings.Contains(err.Error(), "cw.predictions.rejected")
+	})
+	if _, err := r.js.Consumer(context.Background(), "CW", "cw"); err == nil {
+		t.Error("the source created its consumer on a stream it refused")
+	}
+}
