@@ -96,7 +96,7 @@ func (c *Collector) serve(w http.ResponseWriter, r *http.Request, k Kind) int {
 		switch {
 		case len(res.Rejected) == 0:
 			resp.Error = "body holds no lines"
-		case allForbidden(res.Rejected):
+		case res.forbidden == len(res.Rejected)+res.RejectedOmitted:
 			code = http.StatusForbidden
 			resp.Error = "the token may not write any line's model"
 		default:
@@ -104,15 +104,6 @@ func (c *Collector) serve(w http.ResponseWriter, r *http.Request, k Kind) int {
 		}
 	}
 	return c.write(w, code, resp)
-}
-
-func allForbidden(rej []LineError) bool {
-	for _, le := range rej {
-		if le.reason != reasonForbidden {
-			return false
-		}
-	}
-	return true
 }
 
 func (c *Collector) tooLarge() string {

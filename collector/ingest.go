@@ -5,7 +5,6 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"slices"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -35,6 +34,9 @@ type Result struct {
 	// MaxListedRejections, which Rejected does not list: accepted +
 	// duplicates + len(rejected) + rejected_omitted is the number of lines.
 	RejectedOmitted int `json:"rejected_omitted"`
+	// forbidden counts rejections because the token may not write the
+	// line's model.
+	forbidden int
 }
 
 // MaxListedRejections is how many rejected lines Submit lists in a Result.
@@ -66,6 +68,10 @@ type BatchOptions struct {
 	BatchLines int
 	// Progress, when set, is called after each committed batch.
 	Progress func(Progress)
+	// Rejected, when set, is called after each committed batch with its
+	// rejected lines in order, all of them; the Result lists only the first
+	// MaxListedRejections.
+	Rejected func([]LineError)
 }
 
 // StoreError reports a batch the store could not commit; nothing of that
@@ -125,66 +131,13 @@ type ingestRun struct {
 	// being rejected alone.
 	longLineFatal bool
 	// listLimit caps the rejected lines listed in the Result; the rest are
-	// counted in RejectedOmitted. Zero lists every one.
+	// counted in RejectedOmitted.
 	listLimit int
-	progress  func(Progress)
-}
-
-// item is one parsed, valid-so-far line; its prediction or label is at
-// the same index of the batch's preds or labels.
-type item struct {
-	line int
-	// classes names every class the line uses: predicted then score keys
-	// (sorted), or actual.
-	classes []string
-}
-
-// batch gathers the lines of one transaction.
-type batch struct {
-	first, last int
-	lines       int // non-blank lines
-	// items and, by kind, preds or labels hold the valid-so-far lines.
-	items  []item
-	preds  []store.Prediction
-	labels []store.Label
-	// classBuf backs the items' class lists.
-	classBuf []string
-	rejected []LineError
-	// rejectedModels holds, per rejected line in order, the model it named.
-	rejectedModels []string
-}
-
-// model returns the model of item i.
-func (b *batch) model(i int, k Kind) string {
-	if k == Labels {
-		return b.labels[i].Model
-	}
-	return b.preds[i].Model
-}
-
-// move copies item src over item dst, to filter the items in place.
-func (b *batch) move(dst, src int, k Kind) {
-	b.items[dst] = b.items[src]
-	if k == Labels {
-		b.labels[dst] = b.labels[src]
-	} else {
-		b.preds[dst] = b.preds[src]
-	}
-}
-
-// truncate keeps the first n items.
-func (b *batch) truncate(n int, k Kind) {
-	b.items = b.items[:n]
-	if k == Labels {
-		b.labels = b.labels[:n]
-	} else {
-		b.preds = b.preds[:n]
-	}
-}
-
-func (b *batch) reject(line int, model, reason string, err error) {
-	b.rejected = append(b.rejected, LineError{Line: line, Error: err.Error(), reason: reason})
-	b.rejectedModels = append(b.rejectedModels, model)
+	// keep, when not zero, bounds the rejections a batch lists (its
+	// memory); zero lists every rejection of the batch to rejected.
+	keep     int
+	rejected func([]LineError)
+	progress func(Progress)
 }
 
 // Ingest reads a file of kind k from r and stores it in transactions of
@@ -197,7 +150,10 @@ func (c *Collector) Ingest(ctx context.Context, k Kind, r io.Reader, opts BatchO
 	if err := k.check(); err != nil {
 		return Result{Rejected: []LineError{}}, err
 	}
-	run := ingestRun{kind: k, source: "file", batchLines: opts.BatchLines, progress: opts.Progress}
+	run := ingestRun{
+		kind: k, source: "file", batchLines: opts.BatchLines, listLimit: MaxListedRejections,
+		rejected: opts.Rejected, progress: opts.Progress,
+	}
 	if run.batchLines <= 0 {
 		run.batchLines = DefaultBatchLines
 	}
@@ -209,6 +165,7 @@ func (c *Collector) Ingest(ctx context.Context, k Kind, r io.Reader, opts BatchO
 func (c *Collector) ingest(ctx context.Context, src lineSource, run ingestRun) (Result, error) {
 	res := Result{Rejected: []LineError{}}
 	b := c.getBatch()
+	b.keep = run.keep
 	now := c.now()
 	for {
 		line, data, err := src.next()
@@ -218,7 +175,7 @@ func (c *Collector) ingest(ctx context.Context, src lineSource, run ingestRun) (
 		var tooLong *LineTooLongError
 		switch {
 		case errors.As(err, &tooLong) && !run.longLineFatal:
-			b.reject(line, "", reasonInvalid, fmt.Errorf("line is longer than the %d-byte limit", tooLong.Limit))
+			b.reject(line, "", false, reasonInvalid, fmt.Errorf("line is longer than the %d-byte limit", tooLong.Limit))
 		case err != nil:
 			return res, err
 		default:
@@ -247,32 +204,12 @@ func (c *Collector) ingest(ctx context.Context, src lineSource, run ingestRun) (
 	return res, nil
 }
 
-// getBatch returns an empty batch, with the slices of a finished one when
-// the pool holds one: a request of thousands of lines would otherwise grow
-// them from nothing each time.
-func (c *Collector) getBatch() *batch {
-	if b, ok := c.batches.Get().(*batch); ok {
-		return b
-	}
-	return &batch{}
-}
-
-// reset empties b for the next batch, keeping its slices but none of the
-// strings they pointed to.
-func (b *batch) reset() {
-	clear(b.items[:cap(b.items)])
-	clear(b.preds[:cap(b.preds)])
-	clear(b.labels[:cap(b.labels)])
-	clear(b.classBuf[:cap(b.classBuf)])
-	*b = batch{items: b.items[:0], preds: b.preds[:0], labels: b.labels[:0], classBuf: b.classBuf[:0]}
-}
-
 // parse decodes one line into the batch, as an item or a rejection.
 func (c *Collector) parse(b *batch, k Kind, line int, data []byte, now time.Time) {
 	if k == Labels {
 		l, err := parseLabel(data, now, c.limits.MaxFuture)
 		if err != nil {
-			b.reject(line, l.Model, reasonInvalid, err)
+			b.reject(line, l.Model, c.state(l.Model) != nil, reasonInvalid, err)
 			return
 		}
 		b.labels = append(b.labels, l)
@@ -281,31 +218,11 @@ func (c *Collector) parse(b *batch, k Kind, line int, data []byte, now time.Time
 	}
 	p, err := parsePrediction(data, now, c.limits.MaxFuture)
 	if err != nil {
-		b.reject(line, p.Model, reasonInvalid, err)
+		b.reject(line, p.Model, c.state(p.Model) != nil, reasonInvalid, err)
 		return
 	}
 	b.preds = append(b.preds, p)
 	b.items = append(b.items, item{line: line, classes: b.classList(p.Predicted, p.Scores)})
-}
-
-// classList returns first followed by the other keys of scores, sorted,
-// in space taken from classBuf.
-func (b *batch) classList(first string, scores map[string]float64) []string {
-	if cap(b.classBuf)-len(b.classBuf) < 1+len(scores) {
-		// Earlier lists keep the old array; a reused batch starts with the
-		// largest one.
-		b.classBuf = make([]string, 0, max(1024, 2*cap(b.classBuf), 1+len(scores)))
-	}
-	start := len(b.classBuf)
-	b.classBuf = append(b.classBuf, first)
-	for s := range scores {
-		if s != first {
-			b.classBuf = append(b.classBuf, s)
-		}
-	}
-	list := b.classBuf[start:len(b.classBuf):len(b.classBuf)]
-	slices.Sort(list[1:])
-	return list
 }
 
 // resolve checks each item's token permission, model and classes,
@@ -320,7 +237,7 @@ func (c *Collector) resolve(ctx context.Context, b *batch, k Kind, tok *tokenHas
 	for i, it := range b.items {
 		m := b.model(i, k)
 		if tok != nil && !tok.allows(m) {
-			b.reject(it.line, m, reasonForbidden, fmt.Errorf("token %q may not write model %q", tok.name, m))
+			b.reject(it.line, m, states.get(m) != nil, reasonForbidden, fmt.Errorf("token %q may not write model %q", tok.name, m))
 			continue
 		}
 		b.move(allowed, i, k)
@@ -370,7 +287,7 @@ func (c *Collector) resolve(ctx context.Context, b *batch, k Kind, tok *tokenHas
 			case ce.tooMany:
 				reason = reasonTooManyClasses
 			}
-			b.reject(it.line, m, reason, err)
+			b.reject(it.line, m, st != nil, reason, err)
 			continue
 		}
 		if k == Predictions {
@@ -464,24 +381,23 @@ func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time
 		}
 	}
 
-	for i, le := range b.rejected {
-		c.metrics.rejectedLines.WithLabelValues(endpoint, le.reason).Inc()
-		m := b.rejectedModels[i]
-		if c.state(m) == nil {
-			m = "" // unregistered names must not become label values
-		}
-		if run.kind == Labels {
-			c.metrics.labelsReceived.WithLabelValues(m, resultRejected).Inc()
+	for reason, n := range b.reasons {
+		c.metrics.rejectedLines.WithLabelValues(endpoint, reason).Add(float64(n))
+	}
+	if run.kind == Labels {
+		for m, n := range b.models {
+			c.metrics.labelsReceived.WithLabelValues(m, resultRejected).Add(float64(n))
 		}
 	}
-	c.metrics.sourceLines(run.source, endpoint, res.Accepted-accepted, res.Duplicates-duplicates, len(b.rejected))
-	slices.SortFunc(b.rejected, func(x, y LineError) int { return x.Line - y.Line })
-	listed := b.rejected
-	if run.listLimit > 0 {
-		listed = listed[:min(len(listed), max(run.listLimit-len(res.Rejected), 0))]
+	c.metrics.sourceLines(run.source, endpoint, res.Accepted-accepted, res.Duplicates-duplicates, b.nRejected)
+	b.trimRejected()
+	if run.rejected != nil && len(b.rejected) > 0 {
+		run.rejected(b.rejected)
 	}
+	listed := b.rejected[:min(len(b.rejected), max(run.listLimit-len(res.Rejected), 0))]
 	res.Rejected = append(res.Rejected, listed...)
-	res.RejectedOmitted += len(b.rejected) - len(listed)
+	res.RejectedOmitted += b.nRejected - len(listed)
+	res.forbidden += b.forbidden
 	c.metrics.batchLines.WithLabelValues(endpoint).Observe(float64(b.lines))
 
 	c.noteLatest(latest)
@@ -532,7 +448,7 @@ func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Ti
 		case store.PredictionDuplicate:
 			res.Duplicates++
 		case store.PredictionConflict:
-			b.reject(b.items[i].line, p.Model, reasonConflict,
+			b.reject(b.items[i].line, p.Model, true, reasonConflict,
 				fmt.Errorf("prediction %s already recorded with different content; the first one stands", p.ID))
 			continue
 		}

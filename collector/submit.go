@@ -66,7 +66,8 @@ func (c *Collector) submit(ctx context.Context, k Kind, body io.Reader, opts Sub
 	defer c.release()
 	src := newLineSource(newCapReader(body, c.limits.MaxBodyBytes), opts.Format, c.limits.MaxLineBytes)
 	res, err := c.ingest(ctx, src, ingestRun{
-		kind: k, source: cmp.Or(opts.Source, "unknown"), token: tok, longLineFatal: true, listLimit: MaxListedRejections,
+		kind: k, source: cmp.Or(opts.Source, "unknown"), token: tok, longLineFatal: true,
+		listLimit: MaxListedRejections, keep: MaxListedRejections,
 	})
 	var mbe *http.MaxBytesError
 	if errors.As(err, &mbe) {

@@ -50,7 +50,11 @@ func runIngest(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		return fmt.Errorf("register models: %w", err)
 	}
 
-	bopts := collector.BatchOptions{BatchLines: cfg.Ingest.BatchLines}
+	bopts := collector.BatchOptions{BatchLines: cfg.Ingest.BatchLines, Rejected: func(rej []collector.LineError) {
+		for _, r := range rej {
+			fmt.Fprintf(stdout, "%s:%d: %s\n", file, r.Line, r.Error)
+		}
+	}}
 	if !*quiet {
 		bopts.Progress = func(p collector.Progress) {
 			fmt.Fprintf(stderr, "\r%s: %d lines: %d accepted, %d duplicates, %d rejected",
@@ -68,9 +72,6 @@ func runIngest(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	res, err := col.Ingest(ctx, k, f, bopts)
 	if !*quiet {
 		fmt.Fprintln(stderr)
-	}
-	for _, r := range res.Rejected {
-		fmt.Fprintf(stdout, "%s:%d: %s\n", file, r.Line, r.Error)
 	}
 	fmt.Fprintf(stdout, "%s: %d accepted, %d duplicates, %d rejected\n", file, res.Accepted, res.Duplicates, len(res.Rejected)+res.RejectedOmitted)
 	var se *collector.StoreError
