@@ -11,6 +11,7 @@ import (
 	"slices"
 	"sync"
 	"time"
+	"unicode/utf8"
 
 	"github.com/prometheus/client_golang/prometheus"
 
@@ -236,8 +237,10 @@ func ValidClassName(name string) error {
 		return errors.New("class name is empty")
 	case len(name) > maxClassBytes:
 		return fmt.Errorf("class name %.20q… is longer than %d bytes", name, maxClassBytes)
+	case !utf8.ValidString(name):
+		return fmt.Errorf("class name %q is not valid UTF-8", name)
 	}
-	return nil
+	return checkText("class name", name)
 }
 
 // New checks opts and builds a Collector; it does no I/O. Call Prepare

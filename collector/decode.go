@@ -253,6 +253,12 @@ type predictionLine struct {
 	Segment   string             `json:"segment"`
 }
 
+// predictionFields and labelFields are the field names of the wire forms.
+var (
+	predictionFields = []string{"model", "id", "at", "predicted", "scores", "segment"}
+	labelFields      = []string{"model", "id", "actual", "at"}
+)
+
 // labelLine is the wire form of a label.
 type labelLine struct {
 	Model  string `json:"model"`
@@ -268,7 +274,7 @@ func parsePrediction(data []byte, now time.Time, maxFuture time.Duration) (store
 	if !ok {
 		// A variable of its own, so that only this path allocates it.
 		var full predictionLine
-		if err := decodeStrict(data, &full); err != nil {
+		if err := decodeLine(data, &full, predictionFields, "scores"); err != nil {
 			// The model, when it could be read, still names the line in metrics.
 			return store.Prediction{Model: full.Model}, err
 		}
@@ -287,6 +293,9 @@ func parsePrediction(data []byte, now time.Time, maxFuture time.Duration) (store
 	if len(pl.Segment) > maxSegmentBytes {
 		return p, fmt.Errorf(`"segment" is longer than %d bytes`, maxSegmentBytes)
 	}
+	if err := checkText(`"segment"`, pl.Segment); err != nil {
+		return p, err
+	}
 	if err := checkScores(pl.Scores); err != nil {
 		return p, err
 	}
@@ -295,12 +304,18 @@ func parsePrediction(data []byte, now time.Time, maxFuture time.Duration) (store
 	return p, err
 }
 
-// checkScores checks score names and values. Of several bad scores it
-// names the one whose class sorts first, so that the message does not
-// depend on map order.
+// scoreSumSlack is how far above 1 a set of scores may sum, for rounding
+// in the client (README "Early warning").
+const scoreSumSlack = 0.02
+
+// checkScores checks score names and values: each in [0, 1], together at
+// most 1 + scoreSumSlack; they may cover only some classes (README "Early
+// warning"). Of several bad scores it names the one whose class sorts
+// first, so that the message does not depend on map order.
 func checkScores(scores map[string]float64) error {
-	bad, found := "", false
+	bad, found, sum := "", false, 0.0
 	for k, v := range scores {
+		sum += v
 		if ValidClassName(k) != nil || math.IsNaN(v) || v < 0 || v > 1 {
 			if !found || k < bad {
 				bad, found = k, true
@@ -308,6 +323,9 @@ func checkScores(scores map[string]float64) error {
 		}
 	}
 	if !found {
+		if sum > 1+scoreSumSlack {
+			return fmt.Errorf(`"scores" sum to %.4g, more than 1 (by more than %g)`, sum, scoreSumSlack)
+		}
 		return nil
 	}
 	if err := ValidClassName(bad); err != nil {
@@ -321,7 +339,7 @@ func parseLabel(data []byte, now time.Time, maxFuture time.Duration) (store.Labe
 	ll, ok := scanLabel(string(data))
 	if !ok {
 		var full labelLine
-		if err := decodeStrict(data, &full); err != nil {
+		if err := decodeLine(data, &full, labelFields, ""); err != nil {
 			return store.Label{Model: full.Model}, err
 		}
 		ll = full
@@ -350,7 +368,10 @@ func checkKey(model, id string) error {
 	case len(id) > maxIDBytes:
 		return fmt.Errorf(`"id" is longer than %d bytes`, maxIDBytes)
 	}
-	return nil
+	if err := checkText(`"model"`, model); err != nil {
+		return err
+	}
+	return checkText(`"id"`, id)
 }
 
 // parseAt reads an optional RFC 3339 time; empty means now (defaulted).
@@ -373,25 +394,14 @@ func parseAt(s string, now time.Time, maxFuture time.Duration) (t time.Time, def
 	return t.UTC(), false, nil
 }
 
-// decodeStrict decodes one JSON object into v, refusing unknown fields and
-// trailing data, and turns encoding/json's errors into messages about the
-// line's fields.
-func decodeStrict(data []byte, v any) error {
-	dec := json.NewDecoder(bytes.NewReader(data))
-	dec.DisallowUnknownFields()
-	if err := dec.Decode(v); err != nil {
-		return describeJSONError(err)
-	}
-	if _, err := dec.Token(); !errors.Is(err, io.EOF) {
-		return errors.New("unexpected data after the JSON object")
-	}
-	return nil
-}
-
 func describeJSONError(err error) error {
 	var se *json.SyntaxError
 	var te *json.UnmarshalTypeError
 	switch {
+	case errors.As(err, &se) && strings.HasSuffix(se.Error(), "after top-level value"):
+		return errors.New("unexpected data after the JSON object")
+	case errors.As(err, &se) && strings.HasPrefix(se.Error(), "unexpected end of JSON input"):
+		return errors.New("invalid JSON: the object is cut short")
 	case errors.As(err, &se):
 		return fmt.Errorf("invalid JSON at byte %d: %s", se.Offset, strings.TrimPrefix(se.Error(), "json: "))
 	case errors.Is(err, io.ErrUnexpectedEOF), errors.Is(err, io.EOF):

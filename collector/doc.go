@@ -64,15 +64,26 @@
 // # Validation
 //
 // Unknown fields are rejected, so a typo ("predicition") is caught rather
-// than silently dropped. model, id and predicted (labels: actual) are
+// than silently dropped; field names are case-sensitive, and a field given
+// twice in one object (or a class twice in scores) is rejected. A line must
+// be valid UTF-8 and hold no lone UTF-16 surrogate escape (such a string
+// would otherwise decode to U+FFFD, so two ids could become one); model,
+// id, segment and class names must hold no control character (C0, DEL or
+// C1, NUL included). These rules are the collector's, so a line gets the
+// same outcome whichever store is behind it. model, id and predicted (labels: actual) are
 // required strings; id is at most 256 bytes and segment at most 128. at is
 // an RFC 3339 time in the years 1970 to 2199, by default the receive time
 // (class and model names are case-sensitive). A time more than
 // Limits.MaxFuture ahead of the receive time is rejected, because one such
-// line would move the model's watermark and empty every window. scores is
+// line would move the model's watermark and empty every window. A
+// prediction in a bucket that the model's retention purges (older than
+// Retention before the receive time, to the bucket) is rejected with the
+// limit named: it would be dropped at once, and every distinct old day costs
+// the store a partition. scores is
 // an optional object of class → number in [0, 1] (JSON has no NaN or
-// infinity, so the numbers are finite); its keys must be classes of the
-// model and count as classes for auto_register. An unknown model is
+// infinity, so the numbers are finite) whose sum is at most 1 + 0.02 (README
+// "Early warning"); it may cover only some classes. Its keys must be
+// classes of the model and count as classes for auto_register. An unknown model is
 // rejected unless AutoRegisterModels, up to MaxModels models; an unknown
 // class is rejected unless the model's policy auto-registers classes, up
 // to MaxClasses. Model names are 1 to 128 bytes of letters, digits, '.',

@@ -228,7 +228,7 @@ func (c *Collector) parse(b *batch, k Kind, line int, data []byte, now time.Time
 // resolve checks each item's token permission, model and classes,
 // registering what the policies allow, and fills in prediction buckets.
 // Rejected items leave b.items. Only a store failure is returned.
-func (c *Collector) resolve(ctx context.Context, b *batch, k Kind, tok *tokenHash) error {
+func (c *Collector) resolve(ctx context.Context, b *batch, k Kind, tok *tokenHash, now time.Time) error {
 	var order []string
 	needs := map[string][]string{}
 	needed := map[string]map[string]bool{}
@@ -293,11 +293,29 @@ func (c *Collector) resolve(ctx context.Context, b *batch, k Kind, tok *tokenHas
 		if k == Predictions {
 			p := &b.preds[i]
 			p.Bucket = windows.BucketStart(p.At, st.policy.Bucket)
+			if err := tooOld(p, st.policy, now); err != nil {
+				b.reject(it.line, m, true, reasonTooOld, err)
+				continue
+			}
 		}
 		b.move(kept, i, k)
 		kept++
 	}
 	b.truncate(kept, k)
+	return nil
+}
+
+// tooOld refuses a prediction in a bucket that retention has already
+// purged, or would purge at its next run: it would be kept only until then,
+// and every distinct old day costs the store a partition.
+func tooOld(p *store.Prediction, policy ModelPolicy, now time.Time) error {
+	if policy.Retention <= 0 {
+		return nil
+	}
+	if cutoff := retentionCutoff(policy, now); p.Bucket.Before(cutoff) {
+		return fmt.Errorf(`"at": %s is older than the model's retention of %s (buckets before %s are purged)`,
+			p.At.Format(time.RFC3339), policy.Retention, cutoff.Format(time.RFC3339))
+	}
 	return nil
 }
 
@@ -357,7 +375,7 @@ func (c *Collector) check(st *modelState, classes []string, model string, refuse
 
 // flush resolves and commits one batch and adds its outcome to res.
 func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time.Time, res *Result) error {
-	if err := c.resolve(ctx, b, run.kind, run.token); err != nil {
+	if err := c.resolve(ctx, b, run.kind, run.token, now); err != nil {
 		return b.storeError(err)
 	}
 	var latest map[string]time.Time

@@ -77,11 +77,7 @@ func (c *Collector) maintainModel(ctx context.Context, p ModelPolicy, now time.T
 		}
 	}
 	if p.Retention > 0 {
-		// Buckets starting before the bucket that holds now−Retention ended
-		// at or before now−Retention: everything in them is older than the
-		// retention.
-		cutoff := windows.BucketStart(now.Add(-p.Retention), p.Bucket)
-		n, err := c.store.PurgeRaw(ctx, p.Name, cutoff)
+		n, err := c.store.PurgeRaw(ctx, p.Name, retentionCutoff(p, now))
 		if err != nil {
 			c.metrics.storeErrors.WithLabelValues("purge_raw").Inc()
 			errs = append(errs, fmt.Errorf("purge raw rows: %w", err))
@@ -92,6 +88,14 @@ func (c *Collector) maintainModel(ctx context.Context, p ModelPolicy, now time.T
 		}
 	}
 	return errors.Join(errs...)
+}
+
+// retentionCutoff is the start of the oldest bucket retention keeps at
+// now: buckets starting before the bucket that holds now−Retention ended at
+// or before now−Retention, so everything in them is older than the
+// retention.
+func retentionCutoff(p ModelPolicy, now time.Time) time.Time {
+	return windows.BucketStart(now.Add(-p.Retention), p.Bucket)
 }
 
 // RunMaintenance calls Maintain at once and then every interval, with the

@@ -19,6 +19,7 @@ const (
 	reasonTooManyModels  = "too_many_models"
 	reasonForbidden      = "forbidden"
 	reasonConflict       = "conflict"
+	reasonTooOld         = "too_old"
 )
 
 // Label results that do not come from a store outcome.

@@ -139,8 +139,8 @@ func (sc *lineScanner) object(member func(key string) bool) bool {
 	return sc.i == len(sc.s)
 }
 
-// scores reads an object of numbers; repeated keys keep the last value, as
-// in encoding/json.
+// scores reads an object of numbers; a repeated key is left to the slow
+// path, which rejects it.
 func (sc *lineScanner) scores() (map[string]float64, bool) {
 	if !sc.eat('{') {
 		return nil, false
@@ -162,6 +162,9 @@ func (sc *lineScanner) scores() (map[string]float64, bool) {
 		sc.space()
 		v, ok := sc.number()
 		if !ok {
+			return nil, false
+		}
+		if _, dup := m[key]; dup {
 			return nil, false
 		}
 		m[key] = v

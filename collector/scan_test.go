@@ -15,7 +15,6 @@ var (
 		`{"model":"card-fraud","id":"txn-1","at":"2026-03-01T12:00:00Z","predicted":"fraud","scores":{"fraud":0.91,"legit":0.09},"segment":"web"}`,
 		` { "model" : "card-fraud" , "id" : "txn-2" , "predicted" : "legit" , "scores" : { } } `,
 		`{"model":"card-fraud","id":"txn-6","predicted":"legit","scores":{"legit":1.5e0,"fraud":-0,"x":1E-2,"y":-12.5E+3}}`,
-		`{"model":"card-fraud","id":"txn-6","predicted":"legit","scores":{"legit":1,"legit":0.5}}`,
 		`{}`,
 	}
 	scanLabels = []string{
@@ -24,9 +23,10 @@ var (
 	}
 )
 
-// scanMisses are lines that must leave the fast path for decodeStrict,
+// scanMisses are lines that must leave the fast path for decodeLine,
 // which accepts some of them and rejects the rest.
 var scanMisses = []string{
+	`{"model":"card-fraud","id":"txn-6","predicted":"legit","scores":{"legit":1,"legit":0.5}}`,
 	`{"model":"card-fraud","id":"txn-3","predicted":"legit"`,
 	`{"model":"card-fraud","id":"txn-4","predicted":"legit","predicition":"fraud"}`,
 	`{"Model":"card-fraud","ID":"txn-5","Predicted":"legit"}`,
@@ -63,15 +63,15 @@ func TestScanShapes(t *testing.T) {
 	}
 	for _, s := range scanMisses {
 		if _, ok := scanPrediction(s); ok {
-			t.Errorf("scanPrediction(%s) took the fast path; want decodeStrict", s)
+			t.Errorf("scanPrediction(%s) took the fast path; want decodeLine", s)
 		}
 		if _, ok := scanLabel(s); ok {
-			t.Errorf("scanLabel(%s) took the fast path; want decodeStrict", s)
+			t.Errorf("scanLabel(%s) took the fast path; want decodeLine", s)
 		}
 	}
 }
 
-// FuzzScanLine checks that whatever the fast path accepts, decodeStrict
+// FuzzScanLine checks that whatever the fast path accepts, decodeLine
 // accepts too and decodes to the same values.
 func FuzzScanLine(f *testing.F) {
 	for _, seeds := range [][]string{scanPredictions, scanLabels, scanMisses} {
@@ -82,20 +82,20 @@ func FuzzScanLine(f *testing.F) {
 	f.Fuzz(func(t *testing.T, s string) {
 		if got, ok := scanPrediction(s); ok {
 			var want predictionLine
-			if err := decodeStrict([]byte(s), &want); err != nil {
-				t.Fatalf("scanPrediction accepted %q, decodeStrict refused it: %v", s, err)
+			if err := decodeLine([]byte(s), &want, predictionFields, "scores"); err != nil {
+				t.Fatalf("scanPrediction accepted %q, decodeLine refused it: %v", s, err)
 			}
 			if !reflect.DeepEqual(got, want) {
-				t.Fatalf("scanPrediction(%q) = %+v, decodeStrict gives %+v", s, got, want)
+				t.Fatalf("scanPrediction(%q) = %+v, decodeLine gives %+v", s, got, want)
 			}
 		}
 		if got, ok := scanLabel(s); ok {
 			var want labelLine
-			if err := decodeStrict([]byte(s), &want); err != nil {
-				t.Fatalf("scanLabel accepted %q, decodeStrict refused it: %v", s, err)
+			if err := decodeLine([]byte(s), &want, labelFields, ""); err != nil {
+				t.Fatalf("scanLabel accepted %q, decodeLine refused it: %v", s, err)
 			}
 			if got != want {
-				t.Fatalf("scanLabel(%q) = %+v, decodeStrict gives %+v", s, got, want)
+				t.Fatalf("scanLabel(%q) = %+v, decodeLine gives %+v", s, got, want)
 			}
 		}
 	})
