@@ -174,4 +174,3 @@ func (b *batch) classList(first string, scores map[string]float64) []string {
 	slices.Sort(list[1:])
 	return list
 }
-
