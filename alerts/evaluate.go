@@ -92,6 +92,15 @@ func periods(ctx context.Context, in Input, r *Rule) (cur, ref period, err error
 	return cur, ref, nil
 }
 
+// classPeriods is periods with the positions of the rule's classes.
+func classPeriods(ctx context.Context, in Input, r *Rule) (cur, ref period, idx []int, err error) {
+	if cur, ref, err = periods(ctx, in, r); err != nil {
+		return period{}, period{}, nil, err
+	}
+	idx, err = classIndexes(r, in.Model.Name, cur.m.Classes())
+	return cur, ref, idx, err
+}
+
 // reference returns the rule's reference period for the model, aligned
 // with cur's classes (cur may be grown to the reference's). Buckets the
 // current period also covers are left out of the reference, so that the

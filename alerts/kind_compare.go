@@ -38,15 +38,11 @@ func newDrop(r *Rule, bad badFunc) Evaluator {
 // Evaluate compares each of the rule's classes with the reference.
 func (e *dropEval) Evaluate(ctx context.Context, in Input) ([]Finding, error) {
 	r := e.r
-	cur, ref, err := periods(ctx, in, r)
+	cur, ref, idx, err := classPeriods(ctx, in, r)
 	if err != nil {
 		return nil, err
 	}
 	classes := cur.m.Classes()
-	idx, err := classIndexes(r, in.Model.Name, classes)
-	if err != nil {
-		return nil, err
-	}
 	var cs []comparison
 	for _, k := range idx {
 		x1, n1 := e.metric.counts(cur.m, cur.pred, k)

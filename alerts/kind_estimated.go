@@ -26,15 +26,11 @@ func newEstimatedShift(r *Rule, bad badFunc) Evaluator {
 // Evaluate estimates the window's prevalence and tests each class.
 func (e *estimatedShiftEval) Evaluate(ctx context.Context, in Input) ([]Finding, error) {
 	r := e.r
-	cur, ref, err := periods(ctx, in, r)
+	cur, ref, idx, err := classPeriods(ctx, in, r)
 	if err != nil {
 		return nil, err
 	}
 	classes := cur.m.Classes()
-	idx, err := classIndexes(r, in.Model.Name, classes)
-	if err != nil {
-		return nil, err
-	}
 	nCur, nRef := sum(cur.pred), ref.m.Total()
 	est, ok, err := stats.BBSE(ref.m.Dense(), cur.pred, in.Confidence)
 	if err != nil {

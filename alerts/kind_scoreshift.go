@@ -5,8 +5,6 @@ import (
 	"context"
 	"fmt"
 	"math"
-
-	"github.com/classwatch/classwatch/windows/stats"
 )
 
 // scoreShiftEval evaluates a score_shift rule: per class, has the
@@ -21,15 +19,7 @@ type scoreShiftEval struct{ r *Rule }
 func scoreShiftDefaults(r *Rule) { r.Test = cmp.Or(r.Test, TestChiSquare) }
 
 func newScoreShift(r *Rule, bad badFunc) Evaluator {
-	switch r.Test {
-	case TestChiSquare, TestG:
-	case TestNone:
-		if r.Threshold == 0 {
-			bad("threshold", "required when test is none")
-		}
-	default:
-		bad("test", "%q is not one of chi_square, g_test, none", r.Test)
-	}
+	checkTest(r, bad, "threshold", r.Threshold)
 	if !(r.Threshold >= 0 && r.Threshold <= math.Sqrt(math.Ln2)) {
 		bad("threshold", "%g: a Jensen–Shannon distance lies between 0 and %.4g", r.Threshold, math.Sqrt(math.Ln2))
 	}
@@ -39,21 +29,16 @@ func newScoreShift(r *Rule, bad badFunc) Evaluator {
 // Evaluate compares each class's score histogram with the reference's.
 func (e *scoreShiftEval) Evaluate(ctx context.Context, in Input) ([]Finding, error) {
 	r := e.r
-	cur, ref, err := periods(ctx, in, r)
-	if err != nil {
-		return nil, err
-	}
-	classes := cur.m.Classes()
-	idx, err := classIndexes(r, in.Model.Name, classes)
+	cur, ref, idx, err := classPeriods(ctx, in, r)
 	if err != nil {
 		return nil, err
 	}
 	cs := make([]comparison, 0, len(idx))
 	for _, k := range idx {
-		c := comparison{Finding: Finding{Model: in.Model.Name, Class: classes[k]}, p: math.NaN()}
+		c := comparison{Finding: Finding{Model: in.Model.Name, Class: cur.m.Classes()[k]}, p: math.NaN()}
 		c.Result, c.p, err = e.judge(cur, ref, k, in.Confidence)
 		if err != nil {
-			return nil, fmt.Errorf("class %s: %w", classes[k], err)
+			return nil, fmt.Errorf("class %s: %w", c.Class, err)
 		}
 		cs = append(cs, c)
 	}
@@ -96,12 +81,7 @@ func (e *scoreShiftEval) judge(cur, ref period, k int, conf float64) (Result, fl
 	if r.Test == TestNone {
 		return res, math.NaN(), nil
 	}
-	pa, pb := poolSparse(a, b)
-	test := stats.ChiSquare
-	if r.Test == TestG {
-		test = stats.GTest
-	}
-	t, err := test(pa, pb)
+	t, err := homogeneity(r.Test, a, b)
 	if err != nil {
 		return Result{}, 0, err
 	}

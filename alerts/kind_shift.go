@@ -31,15 +31,7 @@ type shiftEval struct {
 // output_shift rules.
 func newShift(actual bool) func(r *Rule, bad badFunc) Evaluator {
 	return func(r *Rule, bad badFunc) Evaluator {
-		switch r.Test {
-		case TestChiSquare, TestG:
-		case TestNone:
-			if r.PSIThreshold == 0 {
-				bad("psi_threshold", "required when test is none")
-			}
-		default:
-			bad("test", "%q is not one of chi_square, g_test, none", r.Test)
-		}
+		checkTest(r, bad, "psi_threshold", r.PSIThreshold)
 		if r.PSIThreshold < 0 {
 			bad("psi_threshold", "must not be negative")
 		}
@@ -77,12 +69,7 @@ func (e *shiftEval) Evaluate(ctx context.Context, in Input) ([]Finding, error) {
 	res.PSI, res.Value = ptr(psi), ptr(psi)
 	met := r.PSIThreshold == 0 || psi >= r.PSIThreshold
 	if r.Test != TestNone {
-		pa, pb := poolSparse(a, b)
-		test := stats.ChiSquare
-		if r.Test == TestG {
-			test = stats.GTest
-		}
-		t, err := test(pa, pb)
+		t, err := homogeneity(r.Test, a, b)
 		if err != nil {
 			return nil, err
 		}
@@ -92,6 +79,30 @@ func (e *shiftEval) Evaluate(ctx context.Context, in Input) ([]Finding, error) {
 	res.Outcome = outcome(met)
 	f.Result = res
 	return []Finding{f}, nil
+}
+
+// checkTest checks the test of a rule comparing two distributions; with
+// test none, the setting key (its value threshold) must decide alone.
+func checkTest(r *Rule, bad badFunc, key string, threshold float64) {
+	switch r.Test {
+	case TestChiSquare, TestG:
+	case TestNone:
+		if threshold == 0 {
+			bad(key, "required when test is none")
+		}
+	default:
+		bad("test", "%q is not one of chi_square, g_test, none", r.Test)
+	}
+}
+
+// homogeneity tests whether counts a and b come from one distribution,
+// by the chi-square (TestChiSquare) or G test, sparse categories pooled.
+func homogeneity(test string, a, b []int64) (stats.Test, error) {
+	pa, pb := poolSparse(a, b)
+	if test == TestG {
+		return stats.GTest(pa, pb)
+	}
+	return stats.ChiSquare(pa, pb)
 }
 
 // poolSparse merges the categories whose expected count in either sample
