@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"net/url"
 	"os"
 	"path/filepath"
 	"time"
@@ -70,13 +71,15 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
   metrics       %[2]s/metrics
   models        %[2]s/v1/models
   card windows  %[2]s/v1/models/card-screen/windows
+  card page     %[2]s/models/card-screen
+  audit report  %[2]s/v1/models/card-screen/report?%[5]s
   alerts        %[2]s/v1/alerts
 
 Data directory: %[3]s (config: %[4]s)
 Fraud recall on card-screen falls about 25s in; the 3d window shows it within a minute.
 Press Ctrl-C to stop.
 
-`, *speed, base, dir, cfgPath)
+`, *speed, base, dir, cfgPath, demoReportQuery(opts.Start))
 
 	simDone := make(chan struct{})
 	go func() {
@@ -101,4 +104,10 @@ Press Ctrl-C to stop.
 	err = d.serve(ctx)
 	<-simDone
 	return err
+}
+
+// demoReportQuery is the query of the demo's printed audit report: the
+// first simulated day (README "Pages and the audit report").
+func demoReportQuery(start time.Time) string {
+	return url.Values{"from": {start.Format(time.RFC3339)}, "to": {start.Add(24 * time.Hour).Format(time.RFC3339)}}.Encode()
 }

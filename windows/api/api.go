@@ -69,6 +69,7 @@ type API struct {
 	history    time.Duration
 	pages      pageTemplates
 	ready      []func(ctx context.Context) error
+	labels     labelTimes
 }
 
 // pageTemplates are the parsed HTML pages.

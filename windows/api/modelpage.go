@@ -133,7 +133,7 @@ func (a *API) handleModelPage(w http.ResponseWriter, r *http.Request) {
 	}
 	p.Watermark = timeText(optTime(p.watermark))
 	p.LastPrediction = ago(now, info.LatestAt)
-	if latest, err := a.store.LatestLabels(ctx); err == nil {
+	if latest, err := a.labels.get(ctx, a.store, now); err == nil {
 		p.LastLabel = ago(now, latest[model])
 	}
 	alerts, err := a.alertStates(ctx, func(rec store.AlertRecord) bool { return rec.Model == model })

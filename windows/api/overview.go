@@ -113,7 +113,7 @@ func (a *API) overview(ctx context.Context) overviewPage {
 		a.log.WarnContext(ctx, "overview: list models", "err", err)
 		page.Error += "The store did not answer the model list; see the daemon's log."
 	}
-	latestLabels, err := a.store.LatestLabels(ctx)
+	latestLabels, err := a.labels.get(ctx, a.store, now)
 	if err != nil {
 		a.log.WarnContext(ctx, "overview: read latest labels", "err", err)
 	}
