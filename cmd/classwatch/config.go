@@ -18,8 +18,8 @@ import (
 // The configuration is split by concern: this file holds the top level,
 // config_load.go reading and validation, config_models.go models and
 // windows, config_ingest.go the push endpoints' limits and tokens,
-// config_alerts.go the alert sections, config_yaml.go the YAML types and
-// error messages.
+// config_alerts.go the alert sections, config_server.go TLS, read tokens
+// and start-up, config_yaml.go the YAML types and error messages.
 
 // databaseURLEnv overrides the file's database key, so the URL and its
 // password can live outside the file.
@@ -70,6 +70,13 @@ type config struct {
 	Ingest ingestConfig `yaml:"ingest"`
 	// Sources are streams consumed besides HTTP push (config_sources.go).
 	Sources []sourceConfig `yaml:"sources,omitempty"`
+	// Read guards the read API, the pages and /metrics with tokens.
+	Read readConfig `yaml:"read"`
+	// TLS turns HTTPS on.
+	TLS tlsConfig `yaml:"tls"`
+	// StoreWait is how long serve retries an unreachable store at start,
+	// answering /readyz with the reason meanwhile; 0 gives up at once.
+	StoreWait duration `yaml:"store_wait"`
 
 	// Alerts and Notifiers are decoded by the alerts package into rules
 	// and notifiers when the file is loaded.
@@ -103,6 +110,7 @@ func defaultConfig() config {
 		MaxClasses:          50,
 		MaxModels:           100,
 		Ingest:              defaultIngest(),
+		StoreWait:           duration(defaultStoreWait),
 	}
 }
 
@@ -169,6 +177,8 @@ func (c config) LogValue() slog.Value {
 		slog.Int("windows", len(c.Windows)),
 		slog.Int("rules", len(c.rules)),
 		slog.Int("tokens", len(c.Ingest.Tokens)),
+		slog.Int("read_tokens", len(c.Read.Tokens)),
+		slog.Bool("tls", c.TLS.enabled()),
 		slog.Bool("auto_register", c.AutoRegister),
 	)
 }

@@ -80,10 +80,14 @@ func (in ingestConfig) tokens() []collector.Token {
 }
 
 // applyEnv reads each token's secret from its environment variable.
-func (in *ingestConfig) applyEnv(getenv func(string) string) {
-	for i := range in.Tokens {
-		if env := in.Tokens[i].TokenEnv; env != "" {
-			in.Tokens[i].secret = strings.TrimSpace(getenv(env))
+func (in *ingestConfig) applyEnv(getenv func(string) string) { applyTokenEnv(in.Tokens, getenv) }
+
+// applyTokenEnv reads each token's secret from its environment variable,
+// without surrounding white space.
+func applyTokenEnv(tokens []tokenConfig, getenv func(string) string) {
+	for i := range tokens {
+		if env := tokens[i].TokenEnv; env != "" {
+			tokens[i].secret = strings.TrimSpace(getenv(env))
 		}
 	}
 }
@@ -113,12 +117,25 @@ func (in ingestConfig) validate(p *problems) {
 	}
 }
 
-// validateTokens checks the token list against the models. With secrets
-// false (commands that serve no HTTP) the environment is not consulted.
+// validateTokens checks the ingest token list against the models.
 func (c config) validateTokens(p *problems, models map[string]bool, secrets bool) {
-	names, seen := map[string]bool{}, map[string]bool{}
+	checkTokens(p, "ingest.tokens", c.Ingest.Tokens, secrets)
 	for i, t := range c.Ingest.Tokens {
-		tp := fmt.Sprintf("ingest.tokens[%d]", i)
+		for j, m := range t.Models {
+			if !models[m] && !c.AutoRegister {
+				p.add(fmt.Sprintf("ingest.tokens[%d].models[%d]", i, j), "%q is not a configured model", m)
+			}
+		}
+	}
+}
+
+// checkTokens checks a token list: each named once, each with its own
+// secret. With secrets false (commands that serve no HTTP) the environment
+// is not consulted.
+func checkTokens(p *problems, path string, tokens []tokenConfig, secrets bool) {
+	names, seen := map[string]bool{}, map[string]bool{}
+	for i, t := range tokens {
+		tp := fmt.Sprintf("%s[%d]", path, i)
 		switch {
 		case t.Name == "":
 			p.add(tp+".name", "is required")
@@ -136,10 +153,5 @@ func (c config) validateTokens(p *problems, models map[string]bool, secrets bool
 			p.add(tp+".token_env", "environment variable %s holds the same token as another entry", t.TokenEnv)
 		}
 		seen[t.secret] = true
-		for j, m := range t.Models {
-			if !models[m] && !c.AutoRegister {
-				p.add(fmt.Sprintf("%s.models[%d]", tp, j), "%q is not a configured model", m)
-			}
-		}
 	}
 }

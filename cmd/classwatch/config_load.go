@@ -67,6 +67,7 @@ func parseConfig(data []byte, src configSource) (config, error) {
 	if src.secrets {
 		cfg.Ingest.applyEnv(getenv)
 		cfg.applySourceEnv(getenv)
+		applyTokenEnv(cfg.Read.Tokens, getenv)
 	}
 	if src.listen != "" {
 		cfg.Listen = src.listen
@@ -136,6 +137,7 @@ func (c config) validate(secrets bool) error {
 	c.Ingest.validate(p)
 	c.validateTokens(p, models, secrets)
 	c.validateSources(p, secrets)
+	c.validateServer(p, secrets)
 	c.validateRuleWindows(p)
 	return errors.Join(p.errs...)
 }

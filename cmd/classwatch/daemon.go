@@ -1,7 +1,6 @@
 package main
 
 import (
-	"cmp"
 	"context"
 	"errors"
 	"fmt"
@@ -11,30 +10,33 @@ import (
 	"os"
 	"time"
 
-	"github.com/prometheus/client_golang/prometheus"
-	"github.com/prometheus/client_golang/prometheus/collectors"
-	"github.com/prometheus/client_golang/prometheus/promhttp"
-
 	"github.com/classwatch/classwatch/alerts"
 	"github.com/classwatch/classwatch/collector"
 	"github.com/classwatch/classwatch/collector/natsjs"
 	"github.com/classwatch/classwatch/windows"
-	"github.com/classwatch/classwatch/windows/api"
 	"github.com/classwatch/classwatch/windows/store"
-	"github.com/classwatch/classwatch/windows/store/pgstore"
-	"github.com/classwatch/classwatch/windows/store/sqlitestore"
 )
 
-// shutdownTimeout bounds the whole teardown: in-flight batches, the last
-// alert evaluation and notifier queues, then the store.
-const shutdownTimeout = 20 * time.Second
+// Each teardown step has its own budget, so one slow step (a stalled
+// client, an unreachable webhook) cannot use up the next one's time.
+const (
+	// bodyGrace is how long request bodies still arriving at shutdown get
+	// before their reads are cut.
+	bodyGrace       = 2 * time.Second
+	httpDrainBudget = 10 * time.Second
+	streamsBudget   = 10 * time.Second
+	loopsBudget     = 5 * time.Second
+	alertsBudget    = 15 * time.Second
+	storeBudget     = 10 * time.Second
+)
 
 // maintenanceLock is the store lock that picks the one replica running the
 // join's maintenance jobs (they are not safe to run twice at once).
 const maintenanceLock = "maintenance"
 
-// daemon is a wired classwatch server. New builds it without serving;
-// serve runs until its context ends, then tears down in reverse order.
+// daemon is a classwatch server. newDaemon binds the listener and answers
+// /healthz and /readyz at once; start wires the rest; serve runs until its
+// context ends, then tears down in reverse order.
 type daemon struct {
 	cfg       config
 	log       *slog.Logger
@@ -44,184 +46,150 @@ type daemon struct {
 	alerts    *alerts.Manager
 	server    *http.Server
 	listener  net.Listener
+	gate      *gate
 	// sources are the stream sources (sources.go).
 	sources []*natsjs.Source
+	health  *storeHealth
+	// certs is nil without TLS; hup delivers SIGHUP (nil: never).
+	certs    *certReloader
+	hup      <-chan os.Signal
+	serveErr chan error
 
-	// stops are teardown steps, run last-registered first.
-	stops []stopStep
+	// stops are the teardown steps of each phase.
+	stops [nStopPhases][]func(ctx context.Context) error
 }
 
-type stopStep struct {
-	name string
-	fn   func(ctx context.Context) error
+// stopPhase orders the teardown: the HTTP server drains first (batches in
+// flight commit), then the stream sources (messages in hand commit and are
+// acknowledged), the background loops, the alerts (queued
+// notifications are sent), the store, the listener.
+type stopPhase int
+
+const (
+	stopHTTP stopPhase = iota
+	stopStreams
+	stopLoops
+	stopAlerts
+	stopStore
+	stopListener
+	nStopPhases
+)
+
+// String names the phase in errors.
+func (p stopPhase) String() string {
+	return [...]string{"http server", "stream sources", "background loops", "alerts", "store", "listener"}[p]
 }
 
-// onStop registers a teardown step right after the thing it tears down
-// exists, so a failure half-way through newDaemon still undoes the rest.
-func (d *daemon) onStop(name string, fn func(ctx context.Context) error) {
-	d.stops = append(d.stops, stopStep{name, fn})
+// budget is the time the phase gets, whatever the others used.
+func (p stopPhase) budget() time.Duration {
+	return [...]time.Duration{httpDrainBudget, streamsBudget, loopsBudget, alertsBudget, storeBudget, time.Second}[p]
 }
 
-// stop runs the teardown steps in reverse, bounded by shutdownTimeout, and
-// joins their errors. Cleanup must happen even when ctx was cancelled.
+// onStop registers the teardown of a phase as soon as the thing it tears
+// down exists, so a failure half-way through start still undoes the rest.
+func (d *daemon) onStop(p stopPhase, fn func(ctx context.Context) error) {
+	d.stops[p] = append(d.stops[p], fn)
+}
+
+// stop runs the registered teardown phase by phase, each within its own
+// budget, and joins their errors. Cleanup must happen even when ctx was
+// cancelled.
 func (d *daemon) stop(ctx context.Context) error {
-	ctx, cancel := context.WithTimeout(context.WithoutCancel(ctx), shutdownTimeout)
-	defer cancel()
+	base := context.WithoutCancel(ctx)
 	var errs []error
-	for i := len(d.stops) - 1; i >= 0; i-- {
-		s := d.stops[i]
-		if err := s.fn(ctx); err != nil {
-			errs = append(errs, fmt.Errorf("stop %s: %w", s.name, err))
+	for p := range nStopPhases {
+		sctx, cancel := context.WithTimeout(base, p.budget())
+		for _, fn := range d.stops[p] {
+			if err := fn(sctx); err != nil {
+				errs = append(errs, fmt.Errorf("stop %s: %w", p, err))
+			}
 		}
+		cancel()
+		d.stops[p] = nil
 	}
-	d.stops = nil
 	return errors.Join(errs...)
 }
 
-// openStore opens the configured backend: PostgreSQL when a URL is set,
-// otherwise the SQLite file under data_dir (created if missing).
-func openStore(ctx context.Context, cfg config) (store.Store, error) {
-	if cfg.Database != "" {
-		s, err := pgstore.Open(ctx, cfg.Database, pgstore.Options{})
-		if err != nil {
-			return nil, fmt.Errorf("open postgres store: %w", err)
-		}
-		return s, nil
-	}
-	if err := os.MkdirAll(cfg.DataDir, 0o750); err != nil {
-		return nil, fmt.Errorf("create data dir: %w", err)
-	}
-	s, err := sqlitestore.Open(ctx, cfg.sqlitePath(), sqlitestore.Options{})
-	if err != nil {
-		return nil, fmt.Errorf("open sqlite store: %w", err)
-	}
-	return s, nil
-}
-
-// newDaemon opens the store, applies migrations and wires the tracker,
-// collector, read API, alerts and HTTP server, in dependency order. It
-// binds the listener so the caller knows the address before serving.
+// newDaemon loads the TLS certificate, binds the listener and serves
+// through the gate, which answers /healthz and /readyz (with the reason)
+// while start wires everything else.
 func newDaemon(ctx context.Context, cfg config, log *slog.Logger) (d *daemon, err error) {
-	d = &daemon{cfg: cfg, log: log}
+	d = &daemon{cfg: cfg, log: log, health: &storeHealth{now: time.Now}, serveErr: make(chan error, 1)}
 	defer func() {
 		if err != nil {
 			err = errors.Join(err, d.stop(ctx))
 		}
 	}()
-	if err := d.openStore(ctx); err != nil {
-		return d, err
+	if cfg.TLS.enabled() {
+		if d.certs, err = newCertReloader(cfg.TLS.CertFile, cfg.TLS.KeyFile, log); err != nil {
+			return d, err
+		}
 	}
-	reg := prometheus.NewRegistry()
-	reg.MustRegister(
-		collectors.NewGoCollector(),
-		collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
-	)
-	if err := d.buildIngest(ctx, reg); err != nil {
-		return d, err
-	}
-	if err := d.buildSources(reg); err != nil {
-		return d, err
-	}
+	d.gate = newGate(d.health, cfg.Read.Tokens, time.Duration(cfg.Ingest.RetryAfter))
 	d.listener, err = net.Listen("tcp", cfg.Listen)
 	if err != nil {
 		return d, fmt.Errorf("listen: %w", err)
 	}
-	d.onStop("listener", func(context.Context) error { return ignoreClosed(d.listener.Close()) })
-	if err := d.buildAlerts(reg); err != nil {
-		return d, err
+	d.onStop(stopListener, func(context.Context) error { return ignoreClosed(d.listener.Close()) })
+	d.server = &http.Server{
+		Handler:           d.gate,
+		ReadHeaderTimeout: 10 * time.Second,
+		ReadTimeout:       time.Minute,
+		IdleTimeout:       2 * time.Minute,
+		ErrorLog:          slog.NewLogLogger(log.Handler(), slog.LevelWarn),
 	}
-	d.buildServer(reg)
+	go func() {
+		if d.certs != nil {
+			d.server.TLSConfig = d.certs.tlsConfig()
+			d.serveErr <- d.server.ServeTLS(d.listener, "", "")
+			return
+		}
+		d.serveErr <- d.server.Serve(d.listener)
+	}()
+	d.onStop(stopHTTP, d.drain)
+	d.warnExposure()
 	return d, nil
 }
 
-// openStore opens the configured store and brings its schema up to date.
-func (d *daemon) openStore(ctx context.Context) error {
-	st, err := openStore(ctx, d.cfg)
-	if err != nil {
+// warnExposure logs when the daemon listens beyond loopback with parts of
+// it open (README.md "Security and limits").
+func (d *daemon) warnExposure() {
+	if loopbackOnly(d.cfg.Listen) {
+		return
+	}
+	if len(d.cfg.Read.Tokens) == 0 {
+		d.log.Warn("listening beyond loopback with no read token: the read API, pages and /metrics are open to anyone who can reach the port", "listen", d.cfg.Listen)
+	}
+	if len(d.cfg.Ingest.Tokens) == 0 {
+		d.log.Warn("listening beyond loopback with no ingest token: anyone who can reach the port may write predictions and labels", "listen", d.cfg.Listen)
+	}
+	if !d.cfg.TLS.enabled() {
+		d.log.Warn("listening beyond loopback without TLS: tokens and data cross the network in clear text", "listen", d.cfg.Listen)
+	}
+}
+
+// drain shuts the HTTP server down: new connections are refused, idle ones
+// closed, and requests in flight finish. Request bodies still arriving
+// after bodyGrace are cut, so a stalled sender cannot hold the drain; what
+// is left when the budget ends is closed. Neither is a failure of the
+// daemon, so neither makes the process exit non-zero.
+func (d *daemon) drain(ctx context.Context) error {
+	done := make(chan error, 1)
+	go func() { done <- d.server.Shutdown(ctx) }()
+	select {
+	case err := <-done:
 		return err
+	case <-time.After(bodyGrace):
+		if n := d.gate.cutBodies(); n > 0 {
+			d.log.Warn("shutdown: cut request bodies still arriving", "requests", n)
+		}
 	}
-	d.store = st
-	d.onStop("store", func(context.Context) error { return d.store.Close() })
-	if err := d.store.Migrate(ctx); err != nil {
-		return fmt.Errorf("migrate: %w", err)
+	err := <-done
+	if errors.Is(err, context.DeadlineExceeded) {
+		d.log.Warn("shutdown: HTTP drain budget spent; closing the remaining connections", "budget", httpDrainBudget.String())
+		return d.server.Close()
 	}
-	return nil
-}
-
-// buildIngest wires the windows tracker and the collector that feeds it,
-// registers the configured models and loads the windows from the store.
-func (d *daemon) buildIngest(ctx context.Context, reg prometheus.Registerer) error {
-	topts := d.cfg.trackerOptions()
-	topts.Store = d.store
-	var err error
-	d.tracker, err = windows.NewTracker(topts)
-	if err != nil {
-		return fmt.Errorf("build windows: %w", err)
-	}
-	copts := d.cfg.collectorOptions()
-	copts.Store = d.store
-	copts.Registerer = reg
-	copts.Logger = d.log
-	copts.CommitFunc = d.tracker.Commit
-	copts.RegisterFunc = d.tracker.SetClasses
-	d.collector, err = collector.New(copts)
-	if err != nil {
-		return fmt.Errorf("build collector: %w", err)
-	}
-	if err := d.collector.Prepare(ctx); err != nil {
-		return fmt.Errorf("register models: %w", err)
-	}
-	if err := d.tracker.Load(ctx); err != nil {
-		return fmt.Errorf("load windows: %w", err)
-	}
-	return nil
-}
-
-// buildAlerts wires the alert manager over the tracker's windows.
-func (d *daemon) buildAlerts(reg prometheus.Registerer) error {
-	var err error
-	d.alerts, err = alerts.New(alerts.Options{
-		Store:        d.store,
-		View:         d.tracker.View,
-		Watermark:    d.tracker.Watermark,
-		Rules:        d.cfg.rules,
-		Notifiers:    d.cfg.notifiers,
-		Windows:      d.cfg.allWindows(),
-		Confidence:   d.cfg.Confidence,
-		Registerer:   reg,
-		Logger:       d.log,
-		GeneratorURL: cmp.Or(d.cfg.ExternalURL, "http://"+d.addr()),
-	})
-	if err != nil {
-		return fmt.Errorf("build alerts: %w", err)
-	}
-	return nil
-}
-
-// buildServer routes the ingest, read, alert and metrics endpoints.
-func (d *daemon) buildServer(reg *prometheus.Registry) {
-	mux := http.NewServeMux()
-	d.collector.Register(mux)
-	api.New(api.Options{Store: d.store, Tracker: d.tracker, Confidence: d.cfg.Confidence, Logger: d.log, Ready: d.sourceChecks()}).Register(mux)
-	d.alerts.Register(mux)
-	// The window families (~52,000 series for 50 models × 12 classes × 4
-	// windows) bypass the registry's per-series checks; MergeGatherers
-	// reports a family name that both define.
-	metrics := windows.MergeGatherers(reg, windows.NewGatherer(d.tracker, d.cfg.Confidence))
-	mux.Handle("GET /metrics", api.MetricsHandler(metrics, promhttp.HandlerOpts{
-		ErrorHandling:     promhttp.ContinueOnError,
-		ErrorLog:          slog.NewLogLogger(d.log.Handler(), slog.LevelError),
-		EnableOpenMetrics: true,
-	}))
-	d.server = &http.Server{
-		Handler:           mux,
-		ReadHeaderTimeout: 10 * time.Second,
-		// An ingest slot is taken before the body is read, so a slow sender
-		// must not hold one for long.
-		ReadTimeout: time.Minute,
-		IdleTimeout: 2 * time.Minute,
-		ErrorLog:    slog.NewLogLogger(d.log.Handler(), slog.LevelWarn),
-	}
+	return err
 }
 
 // ignoreClosed drops the error of closing a listener the server already
@@ -236,17 +204,28 @@ func ignoreClosed(err error) error {
 // addr is the address the daemon listens on (useful with port 0).
 func (d *daemon) addr() string { return d.listener.Addr().String() }
 
-// serve runs the HTTP server and the background loops until ctx ends, then
-// shuts down: the server first (in-flight batches finish and commit), then
-// alerts, then the store.
+// baseURL is how this daemon is reached on its listener.
+func (d *daemon) baseURL() string {
+	if d.certs != nil {
+		return "https://" + d.addr()
+	}
+	return "http://" + d.addr()
+}
+
+// serve runs the background loops and the alerts until ctx ends or the
+// server fails, then shuts down: the HTTP server first (in-flight batches
+// finish and commit), then the loops, the alerts (queued notifications are
+// sent), the store.
 func (d *daemon) serve(ctx context.Context) error {
 	loops, cancelLoops := context.WithCancel(ctx)
-	done := make(chan struct{}, 2)
+	const nLoops = 3
+	done := make(chan struct{}, nLoops)
 	go func() { d.refreshLoop(loops); done <- struct{}{} }()
 	go func() { d.maintainLoop(loops); done <- struct{}{} }()
-	d.onStop("background loops", func(ctx context.Context) error {
+	go func() { d.watchCerts(loops); done <- struct{}{} }()
+	d.onStop(stopLoops, func(ctx context.Context) error {
 		cancelLoops()
-		for range 2 {
+		for range nLoops {
 			select {
 			case <-done:
 			case <-ctx.Done():
@@ -259,24 +238,28 @@ func (d *daemon) serve(ctx context.Context) error {
 	if err := d.alerts.Start(ctx); err != nil {
 		return errors.Join(fmt.Errorf("start alerts: %w", err), d.stop(ctx))
 	}
-	d.onStop("alerts", d.alerts.Stop)
-
+	d.onStop(stopAlerts, d.alerts.Stop)
 	d.startSources(ctx)
-	serveErr := make(chan error, 1)
-	go func() { serveErr <- d.server.Serve(d.listener) }()
-	d.onStop("http server", d.server.Shutdown)
 	d.log.Info("classwatch serving", "addr", d.addr(), "config", d.cfg)
 
 	var err error
 	select {
 	case <-ctx.Done():
-	case err = <-serveErr:
+	case err = <-d.serveErr:
 		if errors.Is(err, http.ErrServerClosed) {
 			err = nil
 		}
 	}
 	d.log.Info("classwatch shutting down")
 	return errors.Join(err, d.stop(ctx))
+}
+
+// watchCerts reloads the TLS certificate on SIGHUP and when its files
+// change; without TLS it returns at once.
+func (d *daemon) watchCerts(ctx context.Context) {
+	if d.certs != nil {
+		d.certs.watch(ctx, d.hup, certCheckInterval)
+	}
 }
 
 // refreshLoop re-reads the windows from the store every refresh interval,

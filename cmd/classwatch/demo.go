@@ -64,7 +64,10 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	if err != nil {
 		return err
 	}
-	base := "http://" + d.addr()
+	if err := d.start(ctx); err != nil {
+		return err
+	}
+	base := d.baseURL()
 	fmt.Fprintf(stdout, `classwatch demo: Plumtwig Mutual (a fictional bank), two models simulated at %.0f× real time.
 
   overview      %[2]s/

@@ -382,7 +382,32 @@ func startDaemon(tb testing.TB, bin, cfg string) *runningDaemon {
 	case <-time.After(30 * time.Second):
 		tb.Fatalf("classwatch serve did not print its address within 30s\n%s", d.stderr)
 	}
+	d.waitReady(tb, 30*time.Second)
 	return d
+}
+
+// waitReady polls /readyz until it answers 200: the address is printed
+// before the store is reached and the routes are wired.
+func (d *runningDaemon) waitReady(tb testing.TB, limit time.Duration) {
+	tb.Helper()
+	deadline := time.Now().Add(limit)
+	for {
+		resp, err := http.Get(d.url + "/readyz")
+		if err == nil {
+			resp.Body.Close()
+			if resp.StatusCode == http.StatusOK {
+				return
+			}
+		}
+		select {
+		case <-d.done:
+			tb.Fatalf("classwatch serve exited before it was ready: %v\n%s", d.waitErr, d.stderr)
+		case <-time.After(50 * time.Millisecond):
+		}
+		if time.Now().After(deadline) {
+			tb.Fatalf("classwatch serve not ready within %s (last: %v)\n%s", limit, err, d.stderr)
+		}
+	}
 }
 
 // stop sends SIGTERM and expects a clean exit well within the daemon's

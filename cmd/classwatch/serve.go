@@ -5,10 +5,13 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
+	"os"
+	"os/signal"
+	"syscall"
 )
 
 // runServe is "classwatch serve": load the config, wire the daemon and serve
-// until SIGINT/SIGTERM.
+// until SIGINT/SIGTERM; SIGHUP reloads the TLS certificate.
 func runServe(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("serve", "serve [--config F] [--listen ADDR] [--database URL]", stderr)
 	path := fs.String("config", "", "config `file` (YAML); without it, the defaults")
@@ -23,11 +26,20 @@ func runServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 		return err
 	}
 	log := newLogger(stderr, *logJSON)
+	hup := make(chan os.Signal, 1)
+	signal.Notify(hup, syscall.SIGHUP)
+	defer signal.Stop(hup)
 	d, err := newDaemon(ctx, cfg, log)
 	if err != nil {
 		return err
 	}
-	fmt.Fprintf(stdout, "classwatch listening on http://%s/\n", d.addr())
+	d.hup = hup
+	// The address is known, and /readyz answers, before the store is
+	// reached.
+	fmt.Fprintf(stdout, "classwatch listening on %s/\n", d.baseURL())
+	if err := d.start(ctx); err != nil {
+		return err
+	}
 	return d.serve(ctx)
 }
 

@@ -21,7 +21,7 @@ func (d *daemon) buildSources(reg prometheus.Registerer) error {
 	if err != nil {
 		return err
 	}
-	d.onStop("stream sources", d.stopSources)
+	d.onStop(stopStreams, d.stopSources)
 	for _, sc := range d.cfg.Sources {
 		src, err := natsjs.New(natsjs.Options{
 			Config:       sc.natsConfig(),
