@@ -5,6 +5,7 @@ import (
 	"path/filepath"
 	"strings"
 	"testing"
+	"time"
 )
 
 // writeConfig writes a config file into a temporary directory.
@@ -79,5 +80,43 @@ func TestSecretsOnlyForServing(t *testing.T) {
 	}
 	if _, err := loadConfig(configSource{path: p, getenv: env(), secrets: true}); err == nil || !strings.Contains(err.Error(), "CW_TOKEN_CLINIC is not set") {
 		t.Errorf("serve's load without secrets = %v, want the missing variable named", err)
+	}
+}
+
+// TestServerKeys checks the TLS, read-token and start-up keys.
+func TestServerKeys(t *testing.T) {
+	cases := []struct {
+		text string
+		env  func(string) string
+		want string // "" means valid
+	}{
+		{"tls: {cert_file: a.crt, key_file: a.key}\nstore_wait: 0s\n", env(), ""},
+		{"tls: {cert_file: a.crt}\n", env(), "tls: needs both cert_file and key_file"},
+		{"store_wait: -1s\n", env(), "store_wait: must not be negative"},
+		{"read: {tokens: [{name: boards, token_env: CW_R}]}\n", env(), "read.tokens[0].token_env: environment variable CW_R is not set"},
+		{"read: {tokens: [{name: boards, token_env: CW_R}]}\n", env("CW_R", "r1"), ""},
+		{"read: {tokens: [{name: boards, token_env: CW_R, models: [m]}]}\n", env("CW_R", "r1"), "read.tokens[0].models: read tokens may read every model"},
+		{"read: {tokens: [{name: a, token_env: CW_R}, {name: a, token_env: CW_S}]}\n", env("CW_R", "r1", "CW_S", "r1"), `token "a" is listed twice`},
+		{"read: {tokens: [{name: a, token_env: CW_R}, {name: b, token_env: CW_S}]}\n", env("CW_R", "r1", "CW_S", "r1"), "CW_S holds the same token"},
+		{"tls: {cert: a.crt}\n", env(), `unknown key "tls.cert"`},
+	}
+	for _, tc := range cases {
+		cfg, err := parseConfig([]byte(tc.text), configSource{getenv: tc.env, secrets: true})
+		switch {
+		case tc.want == "" && err != nil:
+			t.Errorf("%q: %v", tc.text, err)
+		case tc.want != "" && (err == nil || !strings.Contains(err.Error(), tc.want)):
+			t.Errorf("%q = %v, want an error with %q", tc.text, err, tc.want)
+		case tc.want == "" && strings.Contains(cfg.String(), "r1"):
+			t.Errorf("%q: String prints the read token's secret:\n%s", tc.text, cfg)
+		}
+	}
+	if cfg, err := parseConfig(nil, configSource{getenv: env()}); err != nil || time.Duration(cfg.StoreWait) != defaultStoreWait {
+		t.Errorf("default store_wait = %v, %v; want %v", cfg.StoreWait, err, defaultStoreWait)
+	}
+	for listen, want := range map[string]bool{"127.0.0.1:9640": true, "[::1]:9640": true, "localhost:9640": true, "0.0.0.0:9640": false, ":9640": false, "10.1.2.3:9640": false} {
+		if got := loopbackOnly(listen); got != want {
+			t.Errorf("loopbackOnly(%q) = %v, want %v", listen, got, want)
+		}
 	}
 }
