@@ -56,6 +56,9 @@ type config struct {
 	EarlyLabelTTL duration `yaml:"early_label_ttl"`
 	Retention     duration `yaml:"retention"`
 	MaxClasses    int      `yaml:"max_classes"`
+	// MaxSeries is the series budget of one /metrics scrape of the window
+	// families (README.md "Security and limits"); 0 turns it off.
+	MaxSeries int `yaml:"max_series"`
 	// AutoRegister registers models that are not configured, with their
 	// classes, instead of rejecting their lines, while the store holds
 	// fewer than MaxModels (0: no cap).
@@ -109,6 +112,7 @@ func defaultConfig() config {
 		EarlyLabelTTL:       duration(7 * 24 * time.Hour),
 		MaxClasses:          50,
 		MaxModels:           100,
+		MaxSeries:           windows.DefaultMaxSeries,
 		Ingest:              defaultIngest(),
 		StoreWait:           duration(defaultStoreWait),
 	}

@@ -179,6 +179,9 @@ func (c config) validateTop(p *problems) {
 	if c.MaxClasses < 0 {
 		p.add("max_classes", "must not be negative")
 	}
+	if c.MaxSeries < 0 {
+		p.add("max_series", "must not be negative (0 turns the budget off)")
+	}
 	if c.MaxModels < 0 {
 		p.add("max_models", "must not be negative")
 	} else if c.MaxModels > 0 && len(c.Models) > c.MaxModels {

@@ -6,6 +6,8 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/classwatch/classwatch/windows"
 )
 
 // writeConfig writes a config file into a temporary directory.
@@ -118,5 +120,36 @@ func TestServerKeys(t *testing.T) {
 		if got := loopbackOnly(listen); got != want {
 			t.Errorf("loopbackOnly(%q) = %v, want %v", listen, got, want)
 		}
+	}
+}
+
+// TestSeriesBudgetWarning checks which configurations can pass the
+// /metrics series budget, and that the daemon says so at start.
+func TestSeriesBudgetWarning(t *testing.T) {
+	cases := []struct {
+		text string
+		warn bool
+	}{
+		{"", false},
+		{"models: [{name: m, classes: [a, b, c]}]\n", false},
+		{"auto_register: true\n", true}, // 100 models × 50 classes × 3 windows
+		{"auto_register: true\nmax_models: 3\nmax_classes: 10\n", false},
+		{"auto_register: true\nmax_models: 0\n", true},
+		{"auto_register: true\nmax_series: 0\n", false},
+		{"models: [{name: m, classes: [a, b], auto_register: true, max_classes: 0}]\n", true},
+	}
+	for _, tc := range cases {
+		cfg, err := parseConfig([]byte(tc.text), configSource{getenv: env()})
+		if err != nil {
+			t.Fatalf("%q: %v", tc.text, err)
+		}
+		err = windows.CheckScrapeBudget(cfg.scrapeShapes(), cfg.trackerOptions().MaxSeries)
+		if (err != nil) != tc.warn {
+			t.Errorf("%q: budget check = %v, want a warning: %v", tc.text, err, tc.warn)
+		}
+	}
+	p := startInProcess(t, testConfig(t, "auto_register: true\n", "", nil))
+	if !strings.Contains(p.logs.String(), "metrics series budget") {
+		t.Errorf("no start-up warning for 100 auto-registered models of 50 classes:\n%s", p.logs)
 	}
 }

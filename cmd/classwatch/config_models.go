@@ -87,6 +87,10 @@ func (c config) trackerOptions() windows.TrackerOptions {
 	opts := windows.TrackerOptions{
 		DefaultBucket: time.Duration(c.Bucket),
 		Clock:         windows.Clock(c.Clock),
+		MaxSeries:     c.MaxSeries,
+	}
+	if c.MaxSeries == 0 {
+		opts.MaxSeries = -1 // no budget
 	}
 	_, opts.DefaultWindows = c.modelWindows("")
 	for _, m := range c.Models {
@@ -94,6 +98,34 @@ func (c config) trackerOptions() windows.TrackerOptions {
 		opts.Models = append(opts.Models, windows.ModelOptions{Name: m.Name, Bucket: bucket, Windows: ws})
 	}
 	return opts
+}
+
+// scrapeShapes returns what bounds each model's /metrics series: the
+// configured models, plus as many auto-registered ones as max_models
+// leaves room for (an unbounded number without a cap).
+func (c config) scrapeShapes() []windows.ModelShape {
+	var shapes []windows.ModelShape
+	for _, m := range c.Models {
+		p := c.modelPolicy(m)
+		classes := len(m.Classes)
+		if p.AutoRegister {
+			classes = p.MaxClasses
+		}
+		_, ws := c.modelWindows(m.Name)
+		shapes = append(shapes, windows.ModelShape{Classes: classes, Windows: len(ws)})
+	}
+	if !c.AutoRegister {
+		return shapes
+	}
+	_, ws := c.modelWindows("")
+	if c.MaxModels == 0 {
+		// No model cap: as unbounded as a model without a class cap.
+		return append(shapes, windows.ModelShape{Classes: 0, Windows: len(ws)})
+	}
+	for range c.MaxModels - len(c.Models) {
+		shapes = append(shapes, windows.ModelShape{Classes: c.MaxClasses, Windows: len(ws)})
+	}
+	return shapes
 }
 
 // modelPolicy maps one model onto its collector policy, with the

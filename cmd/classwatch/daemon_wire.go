@@ -36,6 +36,7 @@ func (d *daemon) start(ctx context.Context) (err error) {
 	if err := d.prepareStore(ctx, d.gate.setStarting); err != nil {
 		return err
 	}
+	d.warnSeriesBudget()
 	d.gate.setStarting("loading the windows")
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(
@@ -53,6 +54,15 @@ func (d *daemon) start(ctx context.Context) (err error) {
 	}
 	d.gate.open(d.routes(reg))
 	return nil
+}
+
+// warnSeriesBudget warns when the configuration lets a /metrics scrape
+// pass its series budget, so that the left-out series are no surprise.
+func (d *daemon) warnSeriesBudget() {
+	limit := d.cfg.trackerOptions().MaxSeries
+	if err := windows.CheckScrapeBudget(d.cfg.scrapeShapes(), limit); err != nil {
+		d.log.Warn("metrics series budget", "max_series", d.cfg.MaxSeries, "err", err)
+	}
 }
 
 // buildIngest wires the windows tracker and the collector that feeds it,
