@@ -1,11 +1,13 @@
 package main
 
 import (
+	"cmp"
 	"fmt"
 	"strings"
 	"time"
 
 	"github.com/classwatch/classwatch/collector/natsjs"
+	"github.com/classwatch/classwatch/windows"
 )
 
 // sourceConfig is one entry of the sources section: a stream that
@@ -144,7 +146,7 @@ func (c config) validateSources(p *problems, secrets bool) {
 			p.add(sp+".labels_subject", "is the same subject as predictions_subject")
 		}
 		c.validateSourceAuth(p, sp, s, secrets)
-		validateSourceTuning(p, sp, s)
+		validateSourceTuning(p, sp, s, c.Ingest.QueueWait)
 	}
 }
 
@@ -175,7 +177,7 @@ func (c config) validateSourceAuth(p *problems, sp string, s sourceConfig, secre
 }
 
 // validateSourceTuning checks the fetch and redelivery settings.
-func validateSourceTuning(p *problems, sp string, s sourceConfig) {
+func validateSourceTuning(p *problems, sp string, s sourceConfig, queueWait duration) {
 	if s.FetchMessages < 0 {
 		p.add(sp+".fetch_messages", "must not be negative (0 means %d)", natsjs.DefaultFetchMessages)
 	}
@@ -187,6 +189,11 @@ func validateSourceTuning(p *problems, sp string, s sourceConfig) {
 	}
 	if s.AckWait != 0 && time.Duration(s.AckWait) < time.Second {
 		p.add(sp+".ack_wait", "must be at least 1s")
+	}
+	ackWait := cmp.Or(time.Duration(s.AckWait), natsjs.DefaultAckWait)
+	if ackWait <= time.Duration(queueWait) {
+		p.add(sp+".ack_wait", "%s must exceed ingest.queue_wait %s, or a message waiting for a slot is redelivered meanwhile",
+			windows.FormatDuration(ackWait), windows.FormatDuration(time.Duration(queueWait)))
 	}
 	if s.NakDelay < 0 {
 		p.add(sp+".nak_delay", "must not be negative")

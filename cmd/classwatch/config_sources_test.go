@@ -64,6 +64,7 @@ func TestSourcesConfigErrors(t *testing.T) {
 		{"two auths", "sources:\n  - kind: nats\n    token_env: T\n    credentials_file: /x.creds\n", []string{"T", "t"}, []string{"line 2: sources[0]: set one of"}},
 		{"same name", "sources:\n  - kind: nats\n  - kind: nats\n    stream: OTHER\n", nil, []string{`line 3: sources[1]: source "nats" is listed twice`}},
 		{"negative", "sources:\n  - kind: nats\n    workers: -1\n    ack_wait: 10ms\n", nil, []string{"line 3: sources[0].workers", "line 4: sources[0].ack_wait: must be at least 1s"}},
+		{"ack wait under queue wait", "ingest: {queue_wait: 2m}\nsources:\n  - kind: nats\n", nil, []string{"sources[0].ack_wait: 1m must exceed ingest.queue_wait 2m"}},
 		{"bad size", "sources:\n  - kind: nats\n    fetch_bytes: lots\n", nil, []string{"line 3: sources[0].fetch_bytes:", "is not a size"}},
 	}
 	for _, c := range cases {

@@ -51,6 +51,24 @@ func addSource(tb testing.TB, path, natsURL, extra string) {
 	}
 }
 
+// shortQueueWait sets ingest.queue_wait to 1s in the config at path, so
+// that a short ack_wait passes validation.
+func shortQueueWait(tb testing.TB, path string) {
+	tb.Helper()
+	data, err := os.ReadFile(path)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	const from = "ingest: {max_future: 0}"
+	if !bytes.Contains(data, []byte(from)) {
+		tb.Fatalf("config %s lacks %q", path, from)
+	}
+	data = bytes.Replace(data, []byte(from), []byte("ingest: {max_future: 0, queue_wait: 1s}"), 1)
+	if err := os.WriteFile(path, data, 0o600); err != nil {
+		tb.Fatal(err)
+	}
+}
+
 // appendConfig appends raw YAML to the config file at path.
 func appendConfig(tb testing.TB, path, text string) {
 	tb.Helper()
