@@ -50,8 +50,8 @@ func newBound(ceiling bool) func(r *Rule, bad badFunc) Evaluator {
 				bad("interval", "%q is not one of wilson, jeffreys, none", r.Interval)
 			}
 		}
-		if ok && !(r.Threshold >= spec.min && r.Threshold <= 1) {
-			bad("threshold", "%g must lie between %g and 1", r.Threshold, spec.min)
+		if ok && !(r.Threshold >= spec.min && r.Threshold <= spec.max) {
+			bad("threshold", "%g must lie between %g and %.4g", r.Threshold, spec.min, spec.max)
 		}
 		return e
 	}

@@ -283,3 +283,38 @@ alerts:
 		}
 	}
 }
+
+// BenchmarkCUSUMEvaluate measures one evaluation of a cusum rule over a
+// week of 5-minute buckets in SQLite (read, per-bucket trials, design of
+// the threshold, run), against the store read of the same buckets alone:
+//
+//	go test -run '^$' -bench CUSUM -benchmem ./alerts/
+func BenchmarkCUSUMEvaluate(b *testing.B) {
+	bd := setup(b)
+	writeFraudHistory(b, bd.st, t0.Add(-12*24*time.Hour), t0)
+	wm := t0
+	m := cusumManager(b, bd, func() time.Time { return wm })
+	models, err := bd.st.Models(context.Background())
+	if err != nil {
+		b.Fatal(err)
+	}
+	c, err := CompileRules([]Rule{cusumRule()})
+	if err != nil {
+		b.Fatal(err)
+	}
+	ctx := context.Background()
+	b.Run("store read only", func(b *testing.B) {
+		for b.Loop() {
+			if _, err := bd.st.Counts(ctx, store.Query{Model: "card-fraud", From: t0.Add(-72*time.Hour - cusumHorizon), To: t0.Add(-72 * time.Hour)}); err != nil {
+				b.Fatal(err)
+			}
+		}
+	})
+	b.Run("evaluate", func(b *testing.B) {
+		for b.Loop() {
+			if _, _, err := c[0].Evaluate(ctx, m.env(t0, models)); err != nil {
+				b.Fatal(err)
+			}
+		}
+	})
+}

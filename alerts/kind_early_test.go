@@ -253,3 +253,18 @@ alerts:
 		}
 	}
 }
+
+// TestBoundRange: a floor or ceiling threshold must lie in the metric's
+// range, which is not [0, 1] for every metric.
+func TestBoundRange(t *testing.T) {
+	for _, c := range []struct {
+		metric    string
+		threshold float64
+		ok        bool
+	}{{"brier", 1.5, true}, {"brier", 2.5, false}, {"score_shift", 0.5, true}, {"score_shift", 0.9, false}, {"mcc", -0.5, true}, {"recall", 1.2, false}} {
+		_, err := CompileRules([]Rule{{Name: "r", Kind: KindCeiling, Model: "m", Window: "1d", Metric: c.metric, Threshold: c.threshold, Interval: IntervalNone}})
+		if (err == nil) != c.ok {
+			t.Errorf("ceiling %g on %s: %v; want ok %v", c.threshold, c.metric, err, c.ok)
+		}
+	}
+}

@@ -1,14 +1,19 @@
 package alerts
 
-import "github.com/classwatch/classwatch/windows"
+import (
+	"cmp"
+
+	"github.com/classwatch/classwatch/windows"
+)
 
 // metricSpec says how a floor, ceiling or drop rule reads one window metric.
 // Every spec comes from windows.MetricDefs, so the names are the metric
 // names of the JSON API (README.md "HTTP API").
 type metricSpec struct {
 	perClass bool
-	// min is the least value the metric takes: 0, or −1 for mcc and kappa.
-	min float64
+	// min and max bound the metric's values: [0, 1] for most, [−1, 1]
+	// for mcc and kappa, [0, 2] for brier.
+	min, max float64
 	// counts returns the successes and trials of a proportion metric for
 	// class k (ignored when not per class). It is nil for metrics that are
 	// not a proportion of counts and so have no binomial interval.
@@ -26,7 +31,7 @@ var metricSpecs = specsFromTable(windows.MetricDefs())
 func specsFromTable(defs []windows.MetricDef) map[string]metricSpec {
 	specs := make(map[string]metricSpec, len(defs))
 	for _, d := range defs {
-		spec := metricSpec{perClass: d.Scope == windows.ScopeClass, min: d.Min, counts: d.Counts}
+		spec := metricSpec{perClass: d.Scope == windows.ScopeClass, min: d.Min, max: cmp.Or(d.Max, 1), counts: d.Counts}
 		switch {
 		case d.Counts != nil:
 		case d.Judged != nil:
