@@ -39,6 +39,10 @@ type ModelOptions struct {
 	Bucket time.Duration
 	// Windows are the model's windows; nil means the tracker's default.
 	Windows []Window
+	// ReferenceWindow names the window, one of Windows, that the
+	// early-warning figures of every window compare with (README.md
+	// "Early warning"), usually a matured one; empty for none.
+	ReferenceWindow string
 }
 
 // TrackerOptions configure a Tracker.
@@ -203,6 +207,9 @@ func validateWindows(mo ModelOptions) error {
 			return fmt.Errorf("window %s defined twice", w.Name)
 		}
 		seen[w.Name] = true
+	}
+	if mo.ReferenceWindow != "" && !seen[mo.ReferenceWindow] {
+		return fmt.Errorf("reference window %s is not one of the model's windows", mo.ReferenceWindow)
 	}
 	return nil
 }

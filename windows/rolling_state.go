@@ -49,8 +49,9 @@ func compareCounts(x, y bucketCount) int {
 
 // windowSum is a window's running sum over its buckets.
 type windowSum struct {
-	m    *Matrix
-	pred []int64
+	m      *Matrix
+	pred   []int64
+	scores *ScoreSums
 }
 
 // add adds n to cell (actual, predicted), or to the predicted count of
@@ -75,6 +76,9 @@ type modelState struct {
 	// wm is the watermark the sums are current for; zero until the first.
 	wm      time.Time
 	buckets map[int64]bucketCounts // by bucket start, Unix nanoseconds; never empty
+	scores  map[int64]scoreEntries // score aggregates, keyed as buckets; never empty
+	// ref is the index of the reference window in opts.Windows, or −1.
+	ref int
 	sums    []windowSum            // in opts.Windows order
 }
 
@@ -83,11 +87,16 @@ func newModelState(opts ModelOptions) *modelState {
 		opts:    opts,
 		index:   make(map[string]int),
 		buckets: make(map[int64]bucketCounts),
+		scores:  make(map[int64]scoreEntries),
 		sums:    make([]windowSum, len(opts.Windows)),
+		ref:     -1,
 	}
 	for i, w := range opts.Windows {
 		st.reach = max(st.reach, w.Span())
-		st.sums[i] = windowSum{m: NewMatrix(nil)}
+		st.sums[i] = windowSum{m: NewMatrix(nil), scores: NewScoreSums(0)}
+		if w.Name == opts.ReferenceWindow {
+			st.ref = i
+		}
 	}
 	return st
 }
@@ -117,6 +126,7 @@ func (st *modelState) ensureClasses(classes []string) {
 		}
 		st.sums[i].m = g
 		st.sums[i].pred = append(st.sums[i].pred, make([]int64, n-old)...)
+		st.sums[i].scores.grow(n)
 	}
 }
 
@@ -135,6 +145,9 @@ func (st *modelState) apply(mc *modelChanges) {
 	for _, d := range mc.predicted {
 		names = append(names, d.Predicted)
 	}
+	for _, d := range mc.scores {
+		names = append(names, d.Class)
+	}
 	st.ensureClasses(names)
 	for _, d := range mc.cells {
 		st.add(d.Bucket, st.index[d.Actual], st.index[d.Predicted], d.N)
@@ -142,6 +155,7 @@ func (st *modelState) apply(mc *modelChanges) {
 	for _, d := range mc.predicted {
 		st.add(d.Bucket, predictedOnly, st.index[d.Predicted], d.N)
 	}
+	st.applyScores(mc)
 }
 
 // add adds n to count (actual, predicted) of the bucket holding t and of
@@ -197,6 +211,7 @@ func (st *modelState) advance(wm time.Time) {
 			// No overlap: start the sum over.
 			clear(sum.m.cells)
 			clear(sum.pred)
+			sum.scores.reset()
 			st.addRange(sum, nf, nt, step, 1)
 			continue
 		}
@@ -209,20 +224,8 @@ func (st *modelState) advance(wm time.Time) {
 
 // addRange adds sign times each bucket starting in [from, to) to sum.
 func (st *modelState) addRange(sum *windowSum, from, to, step int64, sign int64) {
-	if (to-from)/step > int64(len(st.buckets)) {
-		// Fewer buckets held than steps in the range: walk the map.
-		for key, b := range st.buckets {
-			if key >= from && key < to {
-				addBucket(sum, b, sign)
-			}
-		}
-		return
-	}
-	for key := from; key < to; key += step {
-		if b, ok := st.buckets[key]; ok {
-			addBucket(sum, b, sign)
-		}
-	}
+	inRange(st.buckets, from, to, step, func(b bucketCounts) { addBucket(sum, b, sign) })
+	inRange(st.scores, from, to, step, func(b scoreEntries) { addScoreBucket(sum, b, sign) })
 }
 
 func addBucket(sum *windowSum, b bucketCounts, sign int64) {
@@ -234,18 +237,13 @@ func addBucket(sum *windowSum, b bucketCounts, sign int64) {
 // drop forgets the buckets starting before the oldest one a window can
 // reach at the new watermark wm.
 func (st *modelState) drop(wm time.Time) {
-	newLow := st.low(wm)
-	if st.wm.IsZero() || (newLow-st.low(st.wm))/int64(st.opts.Bucket) > int64(len(st.buckets)) {
-		for key := range st.buckets {
-			if key < newLow {
-				delete(st.buckets, key)
-			}
-		}
-		return
+	var oldLow int64
+	if !st.wm.IsZero() {
+		oldLow = st.low(st.wm)
 	}
-	for key := st.low(st.wm); key < newLow; key += int64(st.opts.Bucket) {
-		delete(st.buckets, key)
-	}
+	step := int64(st.opts.Bucket)
+	dropBefore(st.buckets, st.wm.IsZero(), oldLow, st.low(wm), step)
+	dropBefore(st.scores, st.wm.IsZero(), oldLow, st.low(wm), step)
 }
 
 // view snapshots window i.
@@ -256,6 +254,10 @@ func (st *modelState) view(model string, i int) View {
 		Watermark: st.wm,
 		Matrix:    st.sums[i].m.Clone(),
 		Predicted: slices.Clone(st.sums[i].pred),
+		Scores:    st.sums[i].scores.clone(),
+	}
+	if st.ref >= 0 {
+		v.Reference = &Reference{Matrix: st.sums[st.ref].m.Clone(), Scores: st.sums[st.ref].scores.clone()}
 	}
 	if !st.wm.IsZero() {
 		v.From, v.To = v.Window.Bounds(st.wm)

@@ -53,9 +53,12 @@ func (t *Tracker) Apply(ch store.Changes, latest map[string]time.Time) {
 
 // modelChanges are one model's share of an Apply call.
 type modelChanges struct {
-	cells     []store.CellDelta
-	predicted []store.PredictedDelta
-	latest    time.Time
+	cells       []store.CellDelta
+	predicted   []store.PredictedDelta
+	scores      []store.ScoreDelta
+	calibration []store.CalibrationDelta
+	brier       []store.BrierDelta
+	latest      time.Time
 }
 
 func groupChanges(ch store.Changes, latest map[string]time.Time) map[string]*modelChanges {
@@ -78,6 +81,18 @@ func groupChanges(ch store.Changes, latest map[string]time.Time) map[string]*mod
 	for _, d := range ch.Predicted {
 		mc := get(d.Model)
 		mc.predicted = append(mc.predicted, d)
+	}
+	for _, d := range ch.Scores {
+		mc := get(d.Model)
+		mc.scores = append(mc.scores, d)
+	}
+	for _, d := range ch.Calibration {
+		mc := get(d.Model)
+		mc.calibration = append(mc.calibration, d)
+	}
+	for _, d := range ch.Brier {
+		mc := get(d.Model)
+		mc.brier = append(mc.brier, d)
 	}
 	return out
 }
@@ -187,7 +202,9 @@ func (t *Tracker) read(ctx context.Context, r store.SnapshotReader) (map[string]
 			if err != nil {
 				return nil, fmt.Errorf("read counts of %s: %w", info.Name, err)
 			}
-			st.apply(&modelChanges{cells: cellDeltas(info.Name, counts.Cells), predicted: predictedDeltas(info.Name, counts.Predicted)})
+			mc := scoreDeltas(info.Name, counts)
+			mc.cells, mc.predicted = cellDeltas(info.Name, counts.Cells), predictedDeltas(info.Name, counts.Predicted)
+			st.apply(mc)
 			st.advance(w)
 		}
 		fresh[info.Name] = st

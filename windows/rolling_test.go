@@ -2,6 +2,7 @@ package windows_test
 
 import (
 	"fmt"
+	"reflect"
 	"math/rand/v2"
 	"slices"
 	"testing"
@@ -20,11 +21,44 @@ var t0 = time.Date(2026, 3, 1, 12, 0, 0, 0, time.UTC)
 type oracle struct {
 	cells []store.CellDelta
 	pred  []store.PredictedDelta
+	ch    []store.Changes
 }
 
 func (o *oracle) add(ch store.Changes) {
 	o.cells = append(o.cells, ch.Cells...)
 	o.pred = append(o.pred, ch.Predicted...)
+	o.ch = append(o.ch, ch)
+}
+
+// checkScores compares v's score aggregates with the oracle's sums. The
+// test's float sums are multiples of 1/4, so every sum is exact.
+func (o *oracle) checkScores(t *testing.T, v windows.View) {
+	t.Helper()
+	in := func(model string, b time.Time) bool {
+		return model == v.Model && !b.Before(v.From) && b.Before(v.To)
+	}
+	want := windows.NewScoreSums(v.Matrix.Len())
+	for _, ch := range o.ch {
+		for _, d := range ch.Scores {
+			if k, ok := v.Matrix.Index(d.Class); ok && in(d.Model, d.Bucket) {
+				want.Hist[k][d.Bin] += d.N
+			}
+		}
+		for _, d := range ch.Calibration {
+			if in(d.Model, d.Bucket) {
+				c := &want.Calib[d.Bin]
+				c.N, c.ScoreSum, c.Correct = c.N+d.N, c.ScoreSum+d.ScoreSum, c.Correct+d.Correct
+			}
+		}
+		for _, d := range ch.Brier {
+			if in(d.Model, d.Bucket) {
+				want.BrierN, want.BrierSum = want.BrierN+d.N, want.BrierSum+d.Sum
+			}
+		}
+	}
+	if !reflect.DeepEqual(v.Scores, want) {
+		t.Fatalf("%s/%s scores %+v, want %+v", v.Model, v.Window.Name, *v.Scores, *want)
+	}
 }
 
 // check compares v with the oracle's sums over [from, to), which the
@@ -93,7 +127,7 @@ func TestTrackerMatchesBruteForce(t *testing.T) {
 		t.Run(fmt.Sprint("seed", seed), func(t *testing.T) {
 			rng := rand.New(rand.NewPCG(seed, 99))
 			tr, err := windows.NewTracker(windows.TrackerOptions{
-				Models:         []windows.ModelOptions{{Name: "parcel-sorter", Bucket: 10 * time.Minute, Windows: sorterWindows}},
+				Models:         []windows.ModelOptions{{Name: "parcel-sorter", Bucket: 10 * time.Minute, Windows: sorterWindows, ReferenceWindow: "2h-lag1h"}},
 				DefaultBucket:  5 * time.Minute,
 				DefaultWindows: defaults,
 			})
@@ -128,6 +162,7 @@ func TestTrackerMatchesBruteForce(t *testing.T) {
 							Actual: cs[rng.IntN(len(cs))], Predicted: cs[rng.IntN(len(cs))], N: int64(rng.IntN(9) - 3)})
 						ch.Predicted = append(ch.Predicted, store.PredictedDelta{Model: model, Bucket: b,
 							Predicted: cs[rng.IntN(len(cs))], N: int64(rng.IntN(5))})
+						addScoreDeltas(rng, &ch, model, b, cs)
 					}
 					switch r := rng.IntN(10); {
 					case r < 5:
@@ -156,11 +191,30 @@ func TestTrackerMatchesBruteForce(t *testing.T) {
 						}
 						from, to := v.Window.Bounds(wm)
 						o.check(t, v, from, to)
+						o.checkScores(t, v)
+						if model == "parcel-sorter" {
+							ref, _ := tr.View(model, "2h-lag1h")
+							if v.Reference == nil || !reflect.DeepEqual(v.Reference.Matrix, ref.Matrix) || !reflect.DeepEqual(v.Reference.Scores, ref.Scores) {
+								t.Fatalf("%s/%s: reference is not window 2h-lag1h", model, v.Window.Name)
+							}
+						} else if v.Reference != nil {
+							t.Fatalf("%s/%s: a reference without reference_window", model, v.Window.Name)
+						}
 					}
 				}
 			}
 		})
 	}
+}
+
+// addScoreDeltas appends random score aggregate changes for bucket b,
+// negative ones included (corrections); float sums are multiples of 1/4.
+func addScoreDeltas(rng *rand.Rand, ch *store.Changes, model string, b time.Time, classes []string) {
+	n := int64(rng.IntN(5) - 1)
+	bin := rng.IntN(store.ScoreBins)
+	ch.Scores = append(ch.Scores, store.ScoreDelta{Model: model, Bucket: b, Class: classes[rng.IntN(len(classes))], Bin: bin, N: n})
+	ch.Calibration = append(ch.Calibration, store.CalibrationDelta{Model: model, Bucket: b, Bin: bin, N: n, ScoreSum: float64(n) * 0.75, Correct: n / 2})
+	ch.Brier = append(ch.Brier, store.BrierDelta{Model: model, Bucket: b, N: n, Sum: float64(n) * 0.25})
 }
 
 func TestTrackerLagWindow(t *testing.T) {

@@ -33,6 +33,9 @@ type modelConfig struct {
 	// AutoRegister registers classes the model does not have yet.
 	AutoRegister *bool `yaml:"auto_register,omitempty"`
 	MaxClasses   *int  `yaml:"max_classes,omitempty"`
+	// ReferenceWindow names one of the model's windows that the
+	// early-warning figures compare with (README.md "Early warning").
+	ReferenceWindow string `yaml:"reference_window,omitempty"`
 }
 
 func (w windowConfig) window() windows.Window {
@@ -95,7 +98,7 @@ func (c config) trackerOptions() windows.TrackerOptions {
 	_, opts.DefaultWindows = c.modelWindows("")
 	for _, m := range c.Models {
 		bucket, ws := c.modelWindows(m.Name)
-		opts.Models = append(opts.Models, windows.ModelOptions{Name: m.Name, Bucket: bucket, Windows: ws})
+		opts.Models = append(opts.Models, windows.ModelOptions{Name: m.Name, Bucket: bucket, Windows: ws, ReferenceWindow: m.ReferenceWindow})
 	}
 	return opts
 }
