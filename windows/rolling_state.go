@@ -77,9 +77,9 @@ type modelState struct {
 	wm      time.Time
 	buckets map[int64]bucketCounts // by bucket start, Unix nanoseconds; never empty
 	scores  map[int64]scoreEntries // score aggregates, keyed as buckets; never empty
+	sums    []windowSum            // in opts.Windows order
 	// ref is the index of the reference window in opts.Windows, or −1.
 	ref int
-	sums    []windowSum            // in opts.Windows order
 }
 
 func newModelState(opts ModelOptions) *modelState {

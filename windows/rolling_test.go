@@ -2,8 +2,8 @@ package windows_test
 
 import (
 	"fmt"
-	"reflect"
 	"math/rand/v2"
+	"reflect"
 	"slices"
 	"testing"
 	"time"
