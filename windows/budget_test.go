@@ -169,9 +169,10 @@ func TestScrapeSeriesBound(t *testing.T) {
 	shapes := []windows.ModelShape{{Classes: 4, Windows: 3}, {Classes: 4, Windows: 3}, {Classes: 4, Windows: 3}}
 	bound, ok := windows.ScrapeSeriesBound(shapes)
 	// The tracker has no scores and no reference window: per window, the
-	// 3 score figures and the 5 early-warning series per class (estimate,
-	// its bounds, estimated precision, score shift) are undefined.
-	if early := 3 * 3 * (3 + 4*5); !ok || bound != len(series)+early {
+	// Brier score and calibration error and the 5 early-warning series per
+	// class (estimate, its bounds, estimated precision, score shift) are
+	// undefined.
+	if early := 3 * 3 * (2 + 4*5); !ok || bound != len(series)+early {
 		t.Errorf("bound = %d, %v; the full scrape has %d series plus %d undefined", bound, ok, len(series), early)
 	}
 	if err := windows.CheckScrapeBudget(shapes, bound); err != nil {

@@ -326,7 +326,7 @@ func TestMergeGatherers(t *testing.T) {
 	if !slices.IsSorted(names) {
 		t.Errorf("merged families not sorted by name: %v", names)
 	}
-	if got, want := len(names), 2+22; got != want {
+	if got, want := len(names), 2+23; got != want {
 		t.Errorf("merged %d families, want %d: %v", got, want, names)
 	}
 
