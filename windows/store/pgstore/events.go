@@ -49,7 +49,11 @@ ORDER BY t`
 	sqlExportSnapshot = `SELECT pg_export_snapshot()`
 	// sqlEventWorkMem lets each stream sort in memory up to this size
 	// before it spills to disk.
-	sqlEventWorkMem = `SET LOCAL work_mem = '64MB'`
+	sqlEventWorkMem = `SET LOCAL work_mem = '128MB'`
+	// sqlEventNoNestLoop keeps the planner from joining label versions to
+	// predictions row by row, which it picks when a bulk load has not
+	// been analyzed yet and which then costs versions × predictions.
+	sqlEventNoNestLoop = `SET LOCAL enable_nestloop = off`
 )
 
 // eventChunk is how many events a stream hands to the merge at a time.
@@ -128,8 +132,10 @@ func streamEvents(ctx context.Context, tx pgx.Tx, sql string, args []any, scan f
 	go func() {
 		defer close(es.ch)
 		es.errc <- func() error {
-			if _, err := tx.Exec(ctx, sqlEventWorkMem); err != nil {
-				return unavailable("set work_mem", err)
+			for _, set := range []string{sqlEventWorkMem, sqlEventNoNestLoop} {
+				if _, err := tx.Exec(ctx, set); err != nil {
+					return unavailable("set read options", err)
+				}
 			}
 			rows, err := tx.Query(ctx, sql, args...)
 			if err != nil {
