@@ -8,6 +8,36 @@
 // is read from Metrics. The exporter, the API, the audit report and the
 // rules all iterate that table.
 //
+// # Early warning
+//
+// Before labels arrive, the predicted-class mix and the scores still carry
+// evidence. Per bucket the store keeps additive score aggregates (score
+// histograms per class over store.ScoreBins fixed bins, and over labeled
+// predictions with scores the calibration bins of the predicted class's
+// score and the Brier sum); the Tracker keeps them per bucket and sums them
+// per window like the cells, so a window costs O(buckets) to move. From
+// them, against the model's ReferenceWindow (ModelOptions):
+//
+//   - estimated prevalence: black-box shift estimation (stats.BBSE; Lipton,
+//     Wang & Smola 2018) from the reference's labeled matrix and the
+//     window's predicted counts, with a delta-method interval; undefined
+//     when a class has no labeled example in the reference or the window
+//     has no prediction;
+//   - estimated precision under label shift: q_k·C_kk/μ_k, the estimated
+//     prevalence times the reference's recall of k over the window's
+//     predicted share of k (EstimatedPrecision), clipped to 1;
+//   - Brier score (Brier 1950), expected calibration error over 10
+//     equal-width bins of the predicted class's score, and the reliability
+//     bins (ScoreSums); these need no reference;
+//   - score shift: the Jensen–Shannon distance (Lin 1991) between each
+//     class's score histogram in the window and in the reference.
+//
+// Predictions without scores count in none of the score figures. These are
+// estimates resting on assumptions (label shift: P(predicted | actual)
+// unchanged since the reference) that the data cannot confirm; monitoring
+// is evidence, not validation, and a model whose errors can harm people is
+// judged under the regulations and licensed practice that govern it.
+//
 // # Series budget of /metrics
 //
 // A scrape's size grows with models × windows × classes², the confusion
