@@ -19,7 +19,7 @@ const pageCSS = `
 * { box-sizing: border-box; }
 body { margin:0; background:var(--paper); color:var(--ink); font:14px/1.45 system-ui,-apple-system,"Segoe UI",sans-serif; font-variant-numeric:tabular-nums; }
 .top { border-top:6px solid var(--teal); border-bottom:1px solid var(--rule); background:#f3f1ea; }
-.top .in, main, .foot { max-width:76rem; margin:0 auto; padding:0 1.25rem; }
+.top .in, main, .foot { max-width:92rem; margin:0 auto; padding:0 1.25rem; }
 .top .in { display:flex; align-items:baseline; gap:1.25rem; flex-wrap:wrap; padding-top:.8rem; padding-bottom:.6rem; }
 .brand { font-weight:700; font-size:1.25rem; letter-spacing:.02em; text-decoration:none; color:var(--ink); }
 .brand i { display:inline-block; width:.8rem; height:.8rem; margin-right:.35rem; background:linear-gradient(135deg,var(--teal) 0 50%,var(--sage) 50%); border:1px solid var(--ink); }
