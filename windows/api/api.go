@@ -1,7 +1,8 @@
 // Package api serves classwatch's read side over HTTP: the models and their
 // rolling windows, the confusion matrix and metrics of any past period (as
-// known now or as known at an earlier time), health and readiness, and a
-// small HTML overview page.
+// known now or as known at an earlier time), health and readiness, and the
+// pages people read: the on-call overview, a page per model and the
+// self-contained audit report (README "Pages and the audit report").
 //
 // Routes (registered by API.Register):
 //

@@ -16,6 +16,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/chromedp/cdproto/emulation"
 	"github.com/chromedp/cdproto/log"
 	"github.com/chromedp/cdproto/network"
 	"github.com/chromedp/cdproto/runtime"
@@ -261,6 +262,25 @@ func TestPagesInChromium(t *testing.T) {
 	}
 	mustUnmarshal(t, mustJSON(t, matrix), &m)
 	compareCells(t, "report", report.Cells, m.Classes, m.Matrix)
+
+	// The report as printed on A4: 210 mm less the 2 × 12 mm margins of its
+	// print stylesheet is 186 mm, 703 CSS pixels at 96 per inch. Nothing
+	// may be wider than the paper.
+	var png []byte
+	var fits bool
+	err := chromedp.Run(br.ctx, emulation.SetEmulatedMedia().WithMedia("print"), chromedp.EmulateViewport(703, 1000),
+		chromedp.FullScreenshot(&png, 100), chromedp.Evaluate(`document.documentElement.scrollWidth <= 703`, &fits))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(filepath.Join(dir, "report-print.png"), png, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if !fits {
+		var wide []string
+		chromedp.Run(br.ctx, chromedp.Evaluate(`Array.from(document.querySelectorAll('body *')).filter(e => e.getBoundingClientRect().right > 703).slice(0, 5).map(e => e.tagName + '.' + e.className.baseVal + e.className + ' ' + Math.round(e.getBoundingClientRect().right))`, &wide))
+		t.Errorf("the printed report is wider than A4 paper: %q", wide)
+	}
 }
 
 func compareCells(t *testing.T, where string, cells [][]string, classes []string, matrix [][]int64) {

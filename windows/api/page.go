@@ -4,8 +4,6 @@ import (
 	"bytes"
 	"html/template"
 	"net/http"
-	"net/url"
-	"strconv"
 	"time"
 
 	"github.com/classwatch/classwatch/windows"
@@ -93,15 +91,7 @@ func pageFuncs() template.FuncMap {
 		"css":   func() template.CSS { return template.CSS(pageCSS) },
 		"ratio": htmlNum,
 		"ci":    htmlInterval,
-		"pct": func(v *float64) string {
-			if v == nil {
-				return "–"
-			}
-			return strconv.FormatFloat(100*(*v), 'f', 1, 64) + "%"
-		},
-		"rfc":  func(t time.Time) string { return t.UTC().Format(time.RFC3339) },
-		"esc":  url.PathEscape,
-		"qesc": url.QueryEscape,
+		"rfc":   func(t time.Time) string { return t.UTC().Format(time.RFC3339) },
 	}
 }
 

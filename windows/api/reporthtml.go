@@ -10,6 +10,7 @@ import (
 	"io"
 	"net/http"
 	"net/url"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -30,6 +31,7 @@ const reportPrintCSS = `
 .fp { font-family:ui-monospace,"DejaVu Sans Mono",monospace; font-size:.85rem; word-break:break-all; white-space:normal; }
 .empty { font-size:1.1rem; font-weight:600; border:2px dashed var(--accent); padding:.8rem 1rem; background:#fff; }
 .cw-chart { max-width:100%; height:auto; }
+table.perclass th { white-space:normal; max-width:7rem; vertical-align:bottom; }
 @page { size:auto; margin:14mm 12mm; }
 @media print {
   body { background:#fff; font-size:9.5pt; }
@@ -76,9 +78,11 @@ const reportHTML = `<!doctype html>
 <p class="note">Rows are the actual class, columns the predicted class. Framed cells are correct predictions. The second picture shows each row's shares: its diagonal is the class's recall.</p>
 <div class="grid"><figure><figcaption>counts</figcaption>{{.Counts}}</figure><figure><figcaption>share of each actual row</figcaption>{{.Shares}}</figure></div></section>
 <section><h2>Per class</h2>
-<table><thead><tr><th>class</th><th>support</th><th>predicted</th>{{range .ClassCols}}<th>{{.}}</th>{{end}}</tr></thead><tbody>
-{{range .Classes}}<tr><td class="l">{{.Name}}</td><td>{{.Support}}</td><td>{{.Predictions}}</td>{{range .Cells}}<td>{{.}}</td>{{end}}</tr>
+<p class="note">Each figure with its {{.Confidence}} Wilson interval below it where it has one; support counts the labeled examples of the class, predicted its predictions.</p>
+{{range .ClassTables}}<table class="perclass"><thead><tr><th>class</th><th>support</th><th>predicted</th>{{range .Cols}}<th>{{.}}</th>{{end}}</tr></thead><tbody>
+{{range .Rows}}<tr><td class="l">{{.Name}}</td><td>{{.Support}}</td><td>{{.Predictions}}</td>{{range .Cells}}<td>{{.Value}}{{if .Interval}}<br><span class="muted note">{{.Interval}}</span>{{end}}</td>{{end}}</tr>
 {{end}}</tbody></table>
+{{end}}
 <div class="grid"><figure><figcaption>recall per class</figcaption>{{.Recall}}</figure><figure><figcaption>precision per class</figcaption>{{.Precision}}</figure></div></section>
 <section><h2>History</h2>
 <p class="note">One point per {{.A.HistoryStep}}, with the Wilson interval as a band; labels as of {{.AsOf}}.</p>
@@ -119,8 +123,7 @@ type reportPage struct {
 	Confidence        string
 	Coverage          string
 	Summary           []titled
-	ClassCols         []string
-	Classes           []reportClass
+	ClassTables       []classTable
 	Counts, Shares    template.HTML
 	Recall, Precision template.HTML
 	Steps             []reportStep
@@ -133,11 +136,23 @@ type reportPage struct {
 
 type titled struct{ Title, Value string }
 
+// classTable is one table of per-class figures: the class-scope metrics
+// are split into tables of classColumns columns so that each fits a page.
+type classTable struct {
+	Cols []string
+	Rows []reportClass
+}
+
+// classColumns is how many metrics one per-class table holds.
+const classColumns = 5
+
 type reportClass struct {
 	Name                 string
 	Support, Predictions int64
-	Cells                []string
+	Cells                []classCell
 }
+
+type classCell struct{ Value, Interval string }
 
 type reportStep struct {
 	From                 string
@@ -183,26 +198,28 @@ func newReportPage(au Audit) (reportPage, error) {
 		JSON:       template.JS(data),
 	}
 	p.Command, p.URL = reproduce(au)
+	var classDefs []windows.MetricDef
 	for _, d := range windows.MetricDefs() {
 		if d.Scope == windows.ScopeWindow {
 			p.Summary = append(p.Summary, titled{d.Title, htmlNum(au.Metrics.Values[d.Name])})
 		} else {
-			p.ClassCols = append(p.ClassCols, d.Title)
+			classDefs = append(classDefs, d)
 		}
 	}
-	for _, c := range au.Classes {
-		cf := au.Metrics.PerClass[c]
-		rc := reportClass{Name: c, Support: cf.Support, Predictions: cf.Predictions}
-		for _, d := range windows.MetricDefs() {
-			if d.Scope != windows.ScopeWindow {
-				cell := htmlNum(cf.Values[d.Name])
-				if iv := cf.Intervals[d.Name]; iv != nil {
-					cell += " (" + htmlInterval(iv) + ")"
-				}
-				rc.Cells = append(rc.Cells, cell)
-			}
+	for chunk := range slices.Chunk(classDefs, classColumns) {
+		var tab classTable
+		for _, d := range chunk {
+			tab.Cols = append(tab.Cols, d.Title)
 		}
-		p.Classes = append(p.Classes, rc)
+		for _, c := range au.Classes {
+			cf := au.Metrics.PerClass[c]
+			rc := reportClass{Name: c, Support: cf.Support, Predictions: cf.Predictions}
+			for _, d := range chunk {
+				rc.Cells = append(rc.Cells, classCell{Value: htmlNum(cf.Values[d.Name]), Interval: htmlIntervalOpt(cf.Intervals[d.Name])})
+			}
+			tab.Rows = append(tab.Rows, rc)
+		}
+		p.ClassTables = append(p.ClassTables, tab)
 	}
 	p.drawFigures(au)
 	return p, nil

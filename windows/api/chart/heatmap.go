@@ -59,10 +59,10 @@ func DrawHeatmap(h Heatmap) template.HTML {
 	ht := hmHeadH + float64(n)*cs + hmPad*2 + 14
 	var s svg
 	s.open(w, ht, h.Label)
-	var max int64
+	var top int64
 	for _, row := range h.Matrix {
 		for _, v := range row {
-			max = maxInt(max, v)
+			top = max(top, v)
 		}
 	}
 	x0, y0 := hmLabelW+hmPad+14, hmHeadH+hmPad
@@ -84,7 +84,7 @@ func DrawHeatmap(h Heatmap) template.HTML {
 			rowTotal += v
 		}
 		for j := range h.Classes {
-			drawCell(&s, h, i, j, rowTotal, max, x0+float64(j)*cs, y0+float64(i)*cs, cs)
+			drawCell(&s, h, i, j, rowTotal, top, x0+float64(j)*cs, y0+float64(i)*cs, cs)
 		}
 	}
 	s.printf(`<rect x="%s" y="%s" width="%s" height="%s" fill="none" stroke="%s" stroke-width="1"/>`,
@@ -92,7 +92,7 @@ func DrawHeatmap(h Heatmap) template.HTML {
 	return s.html()
 }
 
-func drawCell(s *svg, h Heatmap, i, j int, rowTotal, max int64, x, y, cs float64) {
+func drawCell(s *svg, h Heatmap, i, j int, rowTotal, top int64, x, y, cs float64) {
 	v := h.Matrix[i][j]
 	var shade float64
 	label := Compact(v)
@@ -109,8 +109,8 @@ func drawCell(s *svg, h Heatmap, i, j int, rowTotal, max int64, x, y, cs float64
 			label = "–"
 		}
 	default:
-		if max > 0 {
-			shade = math.Log1p(float64(v)) / math.Log1p(float64(max))
+		if top > 0 {
+			shade = math.Log1p(float64(v)) / math.Log1p(float64(top))
 		}
 	}
 	title := h.Classes[i] + " predicted as " + h.Classes[j] + ": " + strconv.FormatInt(v, 10)
@@ -144,11 +144,4 @@ func Compact(v int64) string {
 		return strconv.FormatFloat(float64(v)/1e6, 'f', 1, 64) + "M"
 	}
 	return strconv.FormatFloat(float64(v)/1e9, 'f', 1, 64) + "G"
-}
-
-func maxInt(a, b int64) int64 {
-	if b > a {
-		return b
-	}
-	return a
 }

@@ -32,7 +32,7 @@ func DrawHistogram(h Histogram) template.HTML {
 	s.open(w, hgH, h.Label)
 	var top int64
 	for _, b := range h.Bars {
-		top = maxInt(top, b.N)
+		top = max(top, b.N)
 	}
 	base := hgH - hgBot
 	s.printf(`<line x1="6" y1="%s" x2="%s" y2="%s" stroke="%s" stroke-width="1"/>`, f1(base), f1(w-6), f1(base), Ink)
