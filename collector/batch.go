@@ -96,13 +96,18 @@ func (b *batch) reject(line int, model string, registered bool, reason string, e
 		model = strings.Clone(model) // not a view of the whole line
 	}
 	b.models[model]++
-	if b.keep > 0 && b.cutoff > 0 && line > b.cutoff {
+	if !b.lists(line) {
 		return
 	}
 	b.rejected = append(b.rejected, LineError{Line: line, Error: errorText(err), reason: reason})
 	if b.keep > 0 && len(b.rejected) >= 2*b.keep {
 		b.trimRejected()
 	}
+}
+
+// lists reports whether a rejection of line would be kept with its error.
+func (b *batch) lists(line int) bool {
+	return b.keep == 0 || b.cutoff == 0 || line <= b.cutoff
 }
 
 // trimRejected sorts the kept rejections by line and, with keep set,

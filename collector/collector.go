@@ -28,6 +28,8 @@ const (
 	DefaultMaxFuture    = 15 * time.Minute
 	DefaultRetryAfter   = 5 * time.Second
 	DefaultBatchLines   = 1000
+	DefaultMinBodyRate  = 16 << 10
+	DefaultBodyGrace    = 10 * time.Second
 )
 
 // Field length limits, in bytes.
@@ -95,6 +97,16 @@ type Limits struct {
 	MaxFuture time.Duration
 	// RetryAfter is the Retry-After sent with a 503.
 	RetryAfter time.Duration
+	// MinBodyRate is the slowest average rate, in bytes per second on the
+	// wire, at which a request body must arrive once BodyGrace has passed;
+	// a slower body is answered 408. Negative means no minimum.
+	MinBodyRate int64
+	// BodyGrace is how long a body may take before MinBodyRate applies.
+	BodyGrace time.Duration
+	// MaxBufferedBytes caps the request bodies held in memory at once, read
+	// before they take an in-flight slot; past it a request is answered 503.
+	// Zero means 2 × MaxInFlight × MaxBodyBytes.
+	MaxBufferedBytes int64
 }
 
 // CommitFunc runs txFunc, the store transaction of one batch or job, which
@@ -165,6 +177,8 @@ type Collector struct {
 	metrics      *metrics
 	// slots holds one element per running batch (MaxInFlight capacity).
 	slots chan struct{}
+	// bodies tracks the request bodies being read.
+	bodies bodyReads
 	// batches recycles the *batch of finished ingests.
 	batches sync.Pool
 
@@ -259,7 +273,11 @@ func New(opts Options) (*Collector, error) {
 	l.QueueWait = cmp.Or(l.QueueWait, DefaultQueueWait)
 	l.MaxFuture = cmp.Or(l.MaxFuture, DefaultMaxFuture)
 	l.RetryAfter = cmp.Or(l.RetryAfter, DefaultRetryAfter)
-	if l.MaxBodyBytes < 0 || l.MaxLineBytes < 0 || l.MaxInFlight < 0 || l.QueueWait < 0 || l.RetryAfter < 0 || opts.MaxModels < 0 {
+	l.MinBodyRate = cmp.Or(l.MinBodyRate, DefaultMinBodyRate)
+	l.BodyGrace = cmp.Or(l.BodyGrace, DefaultBodyGrace)
+	l.MaxBufferedBytes = cmp.Or(l.MaxBufferedBytes, 2*int64(l.MaxInFlight)*l.MaxBodyBytes)
+	if l.MaxBodyBytes < 0 || l.MaxLineBytes < 0 || l.MaxInFlight < 0 || l.QueueWait < 0 || l.RetryAfter < 0 ||
+		l.BodyGrace < 0 || l.MaxBufferedBytes < 0 || opts.MaxModels < 0 {
 		return nil, errors.New("collector limits must not be negative")
 	}
 	c := &Collector{

@@ -43,13 +43,23 @@
 //   - 403: every line was rejected because the token may not write its
 //     model. A token that may not write some lines' model only gets those
 //     lines rejected.
+//   - 408 (connection closed): the body arrived slower than
+//     Limits.MinBodyRate bytes/s once Limits.BodyGrace had passed.
 //   - 413: the body passes Limits.MaxBodyBytes or one line passes
 //     Limits.MaxLineBytes; nothing is kept.
 //   - 415: a content type or encoding other than the above.
 //   - 503 with Retry-After: the store could not commit (nothing of the
 //     batch is kept), or Limits.MaxInFlight batches were already running
-//     and no slot freed within Limits.QueueWait. Overload is answered with
-//     503, not 429, because it is the server's state, not the client's rate.
+//     and no slot freed within Limits.QueueWait, or the bodies held in
+//     memory reached Limits.MaxBufferedBytes, or the server is shutting down
+//     (CutBodies). Overload is answered with 503, not 429, because it is the
+//     server's state, not the client's rate.
+//
+// A body is read whole (gzip decoded) before its batch waits for an
+// in-flight slot, so a slow sender holds only its own connection and bytes.
+// At most the first MaxListedRejections rejected lines are listed, each
+// error cut to a few hundred bytes, so the memory of a request follows the
+// body limit, not the number of bad lines.
 //
 // A batch is answered 2xx only after its transaction committed. Class
 // registration (auto_register) happens before the batch's transaction and

@@ -1,13 +1,12 @@
 package collector
 
 import (
-	"compress/gzip"
+	"bytes"
 	"crypto/sha256"
 	"crypto/subtle"
 	"encoding/json"
 	"errors"
 	"fmt"
-	"io"
 	"math"
 	"mime"
 	"net/http"
@@ -51,16 +50,13 @@ func (c *Collector) serve(w http.ResponseWriter, r *http.Request, k Kind) int {
 	if r.ContentLength > c.limits.MaxBodyBytes {
 		return c.refuse(w, http.StatusRequestEntityTooLarge, c.tooLarge())
 	}
-	body, err := c.body(w, r)
+	body, release, err := c.readBody(w, r)
+	defer release()
 	if err != nil {
-		var ue unsupportedEncodingError
-		if errors.As(err, &ue) {
-			return c.refuse(w, http.StatusUnsupportedMediaType, err.Error())
-		}
-		return c.refuse(w, http.StatusBadRequest, err.Error())
+		return c.refuseBody(w, k, err)
 	}
 
-	res, err := c.submit(r.Context(), k, body, SubmitOptions{Format: format, Source: "http"}, tok)
+	res, err := c.submit(r.Context(), k, bytes.NewReader(body), SubmitOptions{Format: format, Source: "http"}, tok)
 
 	var (
 		maxBytes *http.MaxBytesError
@@ -151,62 +147,6 @@ func requestFormat(contentType string) (Format, error) {
 		return JSON, nil
 	}
 	return 0, fmt.Errorf("content type %s is not supported; send application/x-ndjson or application/json", mt)
-}
-
-type unsupportedEncodingError struct{ enc string }
-
-func (e unsupportedEncodingError) Error() string {
-	return fmt.Sprintf("content encoding %q is not supported; send gzip or none", e.enc)
-}
-
-// body caps the request body, and decodes gzip under the same cap.
-func (c *Collector) body(w http.ResponseWriter, r *http.Request) (io.Reader, error) {
-	body := http.MaxBytesReader(w, r.Body, c.limits.MaxBodyBytes)
-	switch enc := strings.ToLower(strings.TrimSpace(r.Header.Get("Content-Encoding"))); enc {
-	case "", "identity":
-		return body, nil
-	case "gzip", "x-gzip":
-		zr, err := gzip.NewReader(body)
-		if err != nil {
-			var mbe *http.MaxBytesError
-			if errors.As(err, &mbe) {
-				return nil, err
-			}
-			return nil, fmt.Errorf("read gzip body: %w", err)
-		}
-		return newCapReader(zr, c.limits.MaxBodyBytes), nil
-	default:
-		return nil, unsupportedEncodingError{enc: enc}
-	}
-}
-
-// capReader fails with *http.MaxBytesError once more than limit bytes
-// were read, so a small compressed body cannot expand without bound.
-type capReader struct {
-	r     io.Reader
-	left  int64
-	limit int64
-}
-
-func newCapReader(r io.Reader, limit int64) *capReader {
-	return &capReader{r: r, left: limit, limit: limit}
-}
-
-func (cr *capReader) Read(p []byte) (int, error) {
-	if cr.left <= 0 {
-		// One more byte tells a body of exactly the limit from a longer one.
-		var one [1]byte
-		if _, err := io.ReadFull(cr.r, one[:]); err != nil {
-			return 0, err
-		}
-		return 0, &http.MaxBytesError{Limit: cr.limit}
-	}
-	if int64(len(p)) > cr.left {
-		p = p[:cr.left]
-	}
-	n, err := cr.r.Read(p)
-	cr.left -= int64(n)
-	return n, err
 }
 
 func (c *Collector) retryAfter(w http.ResponseWriter) {

@@ -2,6 +2,7 @@ package collector
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
@@ -204,8 +205,28 @@ func (c *Collector) ingest(ctx context.Context, src lineSource, run ingestRun) (
 	return res, nil
 }
 
+// firstByte returns the first byte of data that is not JSON white space.
+func firstByte(data []byte) byte {
+	for _, c := range data {
+		if c != ' ' && c != '\t' && c != '\r' && c != '\n' {
+			return c
+		}
+	}
+	return 0
+}
+
+// errNotJSON rejects a line that is not a JSON object and will not be
+// listed.
+var errNotJSON = errors.New("not a JSON object")
+
 // parse decodes one line into the batch, as an item or a rejection.
 func (c *Collector) parse(b *batch, k Kind, line int, data []byte, now time.Time) {
+	if !b.lists(line) && (firstByte(data) != '{' || !json.Valid(data)) {
+		// Its error would not be listed: skip building it, so that a body
+		// of garbage lines costs little more than its bytes.
+		b.reject(line, "", false, reasonInvalid, errNotJSON)
+		return
+	}
 	if k == Labels {
 		l, err := parseLabel(data, now, c.limits.MaxFuture)
 		if err != nil {

@@ -43,6 +43,7 @@ type metrics struct {
 	purged              *prometheus.CounterVec
 	maintenanceSuccess  prometheus.Gauge
 	sourceLinesTotal    *prometheus.CounterVec
+	bodyRefusals        *prometheus.CounterVec
 }
 
 func newMetrics(reg prometheus.Registerer) (m *metrics, err error) {
@@ -105,6 +106,10 @@ func newMetrics(reg prometheus.Registerer) (m *metrics, err error) {
 			Name: "classwatch_source_lines_total",
 			Help: "Input lines of committed batches by source (http, file, nats), kind (predictions, labels) and result (accepted, duplicate, rejected).",
 		}, []string{"source", "kind", "result"}),
+		bodyRefusals: f.NewCounterVec(prometheus.CounterOpts{
+			Name: "classwatch_collector_body_refusals_total",
+			Help: "Request bodies refused while being read, by endpoint and reason (stalled: slower than the minimum rate, answered 408; shutdown: cut at shutdown; buffer_full: too many bodies in memory).",
+		}, []string{"endpoint", "reason"}),
 		maintenanceSuccess: f.NewGauge(prometheus.GaugeOpts{
 			Name: "classwatch_collector_maintenance_last_success_timestamp_seconds",
 			Help: "When the maintenance jobs last completed without error, in Unix seconds.",
