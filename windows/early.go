@@ -179,3 +179,22 @@ func AddEarlyWarning(ms *Metrics, pred []int64, scores *ScoreSums, ref *Referenc
 		}
 	}
 }
+
+// Aligned returns r over classes, which must extend r's classes (a period
+// read from the store may hold classes registered since); nil when r is
+// nil or its classes are not a prefix of classes.
+func (r *Reference) Aligned(classes []string) *Reference {
+	if r == nil || r.Matrix == nil {
+		return nil
+	}
+	m, err := r.Matrix.Grow(classes)
+	if err != nil {
+		return nil
+	}
+	out := &Reference{Matrix: m}
+	if r.Scores != nil {
+		out.Scores = r.Scores.clone()
+		out.Scores.grow(len(classes))
+	}
+	return out
+}

@@ -306,6 +306,11 @@ func (a *API) matrixQuery(r *http.Request) (MatrixQuery, error) {
 		seg := params.Get("segment")
 		q.Segment = &seg
 	}
+	if ref := a.tracker.Options(q.Model).ReferenceWindow; ref != "" {
+		if v, ok := a.tracker.View(q.Model, ref); ok {
+			q.Reference = &windows.Reference{Matrix: v.Matrix, Scores: v.Scores}
+		}
+	}
 	return q, nil
 }
 

@@ -44,6 +44,9 @@ type MatrixQuery struct {
 	// AsOf, when non-nil, asks for the labels as known at that time instead
 	// of the current ones.
 	AsOf *time.Time
+	// Reference, when non-nil, is the model's reference window that the
+	// early-warning figures compare with (README.md "Early warning").
+	Reference *windows.Reference
 }
 
 // Report is a model's confusion matrix and metrics over a period: the body
@@ -170,7 +173,7 @@ func (p period) report(confidence float64) (Report, error) {
 		return Report{}, fmt.Errorf("sum counts: %w", err)
 	}
 	mt := windows.Compute(m, pred, confidence)
-	windows.AddEarlyWarning(&mt, pred, scores, nil, confidence)
+	windows.AddEarlyWarning(&mt, pred, scores, p.q.Reference.Aligned(p.classes), confidence)
 	return Report{
 		Model:   p.q.Model,
 		From:    p.q.From.UTC(),
