@@ -159,11 +159,17 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 		lineKey[i] = index[labelKey{ids[l.Model], l.ID}]
 	}
 	var t *tally
+	// A retry takes the models' label locks exclusively: it then waits for
+	// the batches in flight and keeps new ones out, so a batch that lost a
+	// race on a version number cannot lose it again however busy the model.
+	attempts := 0
 	err = s.retry(ctx, func() error {
+		exclusive := attempts > 0
+		attempts++
 		return s.withDays(ctx, func() error {
 			t = newTally()
 			return s.inTx(ctx, func(c *pgx.Conn) error {
-				return s.applyLabels(ctx, c, batch, ids, keys, lineKey, micro(now), res.Outcomes, t)
+				return s.applyLabels(ctx, c, batch, ids, keys, lineKey, micro(now), exclusive, res.Outcomes, t)
 			})
 		})
 	})
@@ -177,8 +183,8 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 // applyLabels is one attempt at the label transaction: keys are the
 // batch's distinct (model, id) pairs and lineKey the key of each line.
 func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Label, ids map[string]int32,
-	keys []labelKey, lineKey []int, now time.Time, out []store.LabelOutcome, t *tally) error {
-	targets, err := s.findTargets(ctx, tx, ids, keys)
+	keys []labelKey, lineKey []int, now time.Time, exclusive bool, out []store.LabelOutcome, t *tally) error {
+	targets, err := s.findTargets(ctx, tx, ids, keys, exclusive)
 	if err != nil {
 		return err
 	}
@@ -211,12 +217,13 @@ func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Lab
 	return tx.SendBatch(ctx, &b).Close()
 }
 
-// findTargets opens the transaction, takes the models' label locks (shared) and
+// findTargets opens the transaction, takes the models' label locks (shared,
+// or exclusive when exclusive is set) and
 // looks up the predictions of keys, in one round trip; for unknown keys it
 // then takes the models' early-label locks exclusively, which waits for
 // prediction batches in flight, and looks again. The result holds nil for
 // a key still unknown.
-func (s *Store) findTargets(ctx context.Context, tx *pgx.Conn, ids map[string]int32, keys []labelKey) ([]*target, error) {
+func (s *Store) findTargets(ctx context.Context, tx *pgx.Conn, ids map[string]int32, keys []labelKey, exclusive bool) ([]*target, error) {
 	targets := make([]*target, len(keys))
 	all := make([]int, len(keys))
 	for i := range all {
@@ -227,7 +234,11 @@ func (s *Store) findTargets(ctx context.Context, tx *pgx.Conn, ids map[string]in
 	b.Queue(sqlNoHashJoin)
 	b.Queue(sqlNoMergeJoin)
 	b.Queue(sqlNoJIT)
-	b.Queue(sqlLockModelsShare, s.keys.label, sortedModels(ids))
+	lock := sqlLockModelsShare
+	if exclusive {
+		lock = sqlLockModels
+	}
+	b.Queue(lock, s.keys.label, sortedModels(ids))
 	queueFind(&b, keys, all, targets)
 	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
 		return nil, err
