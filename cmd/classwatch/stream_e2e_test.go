@@ -2,7 +2,9 @@ package main
 
 import (
 	"context"
+	"encoding/json"
 	"fmt"
+	"net/http"
 	"net/url"
 	"os"
 	"path/filepath"
@@ -293,7 +295,7 @@ func TestStreamSurvivesDatabaseOutage(t *testing.T) {
 }
 
 // TestStreamReadiness checks that /readyz answers 503 naming the source
-// (and no host) while NATS cannot be reached, and 200 once it can.
+// (and no host) while NATS cannot be reached, and 200 once it is back.
 func TestStreamReadiness(t *testing.T) {
 	if testing.Short() {
 		t.Skip("builds and runs the binary; skipped with -short")
@@ -301,17 +303,30 @@ func TestStreamReadiness(t *testing.T) {
 	t.Parallel()
 	fx := loadE2EFixture(t)
 	srv := natstest.Start(t)
-	srv.Stop()
 	bin := buildBinary(t)
 	cfg := writeE2EConfig(t, fx, "")
 	addSource(t, cfg, srv.URL, "")
-	d := startDaemon(t, bin, cfg)
+	d := startDaemon(t, bin, cfg) // waits for /readyz 200
+	srv.Stop()
 	var body struct {
 		Error string `json:"error"`
 	}
-	getJSON(t, d.url+"/readyz", 503, &body)
+	deadline := time.Now().Add(30 * time.Second)
+	for body.Error == "" && time.Now().Before(deadline) {
+		resp, err := http.Get(d.url + "/readyz")
+		if err != nil {
+			t.Fatal(err)
+		}
+		if resp.StatusCode == http.StatusServiceUnavailable {
+			if err := json.NewDecoder(resp.Body).Decode(&body); err != nil {
+				t.Fatal(err)
+			}
+		}
+		resp.Body.Close()
+		time.Sleep(50 * time.Millisecond)
+	}
 	if !strings.Contains(body.Error, "source nats") || strings.Contains(body.Error, "127.0.0.1") {
-		t.Errorf("/readyz error %q, want it to name the source and no host", body.Error)
+		t.Errorf("/readyz error %q while NATS is down, want it to name the source and no host", body.Error)
 	}
 	srv.Restart()
 	waitReady(t, d.url)
