@@ -305,14 +305,26 @@ func windowNames(n *yaml.Node) []string {
 }
 
 // CheckWindows reports the rules that name a window (their own or their
-// reference's) missing from ws: the check New makes, for a caller that
-// validates a configuration without building a Manager.
+// reference's) missing from ws, and those whose kind cannot use the
+// window they name (a cusum reference inside its own buckets): the check
+// New makes, for a caller that validates a configuration without building
+// a Manager.
 func CheckWindows(rules []Rule, ws []windows.Window) error {
 	names := make([]string, len(ws))
 	for i, w := range ws {
 		names[i] = w.Name
 	}
-	return checkWindowNames(rules, names)
+	errs := []error{checkWindowNames(rules, names)}
+	for i, r := range rules {
+		spec, ok := kinds[r.Kind]
+		if !ok || spec.checkWindows == nil {
+			continue
+		}
+		if err := spec.checkWindows(&r, ws); err != nil {
+			errs = append(errs, fmt.Errorf("rule %s: %w", ruleLabel(r.Name, i), err))
+		}
+	}
+	return errors.Join(errs...)
 }
 
 // checkWindowNames reports rules that name a window not in names.

@@ -164,8 +164,8 @@
 //
 // p0 is the metric over the reference period (a window or a fixed range),
 // leaving out the buckets the chart itself reads, so that a drop does not
-// drag its own baseline down; a reference that is only those buckets has
-// no data, and the outcome is unknown. A reference without a single
+// drag its own baseline down; a reference window wholly inside those
+// buckets is rejected when the config is checked. A reference without a single
 // failure (or success) is read as having half of one. Or p0 is given as
 // expected. Below min_count trials in the reference the outcome is
 // unknown.

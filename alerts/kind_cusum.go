@@ -7,6 +7,7 @@ import (
 	"slices"
 	"time"
 
+	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store"
 )
 
@@ -70,6 +71,31 @@ func newCUSUM(r *Rule, bad badFunc) Evaluator {
 		}
 	}
 	return &cusumEval{r: r}
+}
+
+// checkCUSUMReference reports a reference window that lies wholly within
+// the buckets the chart reads itself ([W − lag − 7d, W − lag)): p0 would
+// never have data. Several windows of one name (per-model windows) pass
+// when one of them reaches outside.
+func checkCUSUMReference(r *Rule, ws []windows.Window) error {
+	if r.Reference.Window == "" {
+		return nil
+	}
+	inside := false
+	for _, w := range ws {
+		if w.Name != r.Reference.Window {
+			continue
+		}
+		if w.Lag < r.Lag || w.Lag+w.Length > r.Lag+cusumHorizon {
+			return nil
+		}
+		inside = true
+	}
+	if inside {
+		return fmt.Errorf("reference: window %s lies within the buckets the cusum reads itself (from lag %s back %s), so p0 would have no data; use a longer or older window",
+			r.Reference.Window, r.Lag, cusumHorizon)
+	}
+	return nil
 }
 
 // shifted returns p1 for the in-control proportion p0.

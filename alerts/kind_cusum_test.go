@@ -318,3 +318,17 @@ func BenchmarkCUSUMEvaluate(b *testing.B) {
 		}
 	})
 }
+
+func TestCUSUMReferenceInsideChart(t *testing.T) {
+	r := cusumRule()
+	r.Expected, r.Reference = 0, Reference{Window: "7d-matured"}
+	err := CheckWindows([]Rule{r}, []windows.Window{weekWindow})
+	if err == nil || !strings.Contains(err.Error(), `rule "fraud-recall-cusum": reference: window 7d-matured lies within the buckets the cusum reads itself`) {
+		t.Errorf("a reference equal to the chart's own week: %v", err)
+	}
+	month := windows.Window{Name: "30d-matured", Length: 720 * time.Hour, Lag: 72 * time.Hour}
+	r.Reference.Window = month.Name
+	if err := CheckWindows([]Rule{r}, []windows.Window{weekWindow, month}); err != nil {
+		t.Errorf("a matured month: %v", err)
+	}
+}

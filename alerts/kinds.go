@@ -84,6 +84,9 @@ type kindSpec struct {
 	// lookback, when set, is how far before the watermark the kind reads
 	// stored cells itself, beyond its windows (see Rule.Lookback).
 	lookback func(r *Rule) time.Duration
+	// checkWindows, when set, checks the configured windows the rule names
+	// against what the kind needs of them (see CheckWindows).
+	checkWindows func(r *Rule, ws []windows.Window) error
 	// describe is the one-line summary of an alert of this kind with
 	// known figures (see summary).
 	describe func(a *Alert, subject string) string
@@ -126,7 +129,7 @@ var kinds = map[Kind]kindSpec{
 		defaults: scoreShiftDefaults, build: newScoreShift, describe: describeScoreShift,
 	},
 	KindCUSUM: {
-		keys: cusumKeys, lookback: func(r *Rule) time.Duration { return r.Lag + cusumHorizon },
+		keys: cusumKeys, lookback: func(r *Rule) time.Duration { return r.Lag + cusumHorizon }, checkWindows: checkCUSUMReference,
 		defaults: cusumDefaults, build: newCUSUM, describe: describeCUSUM,
 	},
 	KindNoTraffic: {

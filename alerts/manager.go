@@ -115,11 +115,7 @@ func New(opts Options) (*Manager, error) {
 		return nil, fmt.Errorf("check alert rules: %w", err)
 	}
 	if len(opts.Windows) > 0 {
-		names := make([]string, len(opts.Windows))
-		for i, w := range opts.Windows {
-			names[i] = w.Name
-		}
-		if err := checkWindowNames(opts.Rules, names); err != nil {
+		if err := CheckWindows(opts.Rules, opts.Windows); err != nil {
 			return nil, fmt.Errorf("check alert rules: %w", err)
 		}
 	}
