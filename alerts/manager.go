@@ -44,7 +44,8 @@ type Options struct {
 	// View reads the current windows.
 	View ViewFunc
 	// Watermark returns a model's watermark (the rolling tracker's
-	// Watermark); cusum rules need it and find no data without it.
+	// Watermark); without it a cusum rule's evaluation fails (on all
+	// models, it skips them).
 	Watermark func(model string) (time.Time, bool)
 	// Rules and Notifiers, usually from ParseRules and ParseNotifiers.
 	Rules     []Rule
