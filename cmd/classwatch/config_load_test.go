@@ -3,9 +3,13 @@ package main
 import (
 	"os"
 	"path/filepath"
+	"reflect"
+	"regexp"
 	"strings"
 	"testing"
 	"time"
+
+	"gopkg.in/yaml.v3"
 
 	"github.com/classwatch/classwatch/windows"
 )
@@ -152,4 +156,99 @@ func TestSeriesBudgetWarning(t *testing.T) {
 	if !strings.Contains(p.logs.String(), "metrics series budget") {
 		t.Errorf("no start-up warning for 100 auto-registered models of 50 classes:\n%s", p.logs)
 	}
+}
+
+// TestKubernetesExample loads the config of deploy/kubernetes through the
+// real loader and checks that, binding every interface, it sets ingest
+// tokens, read tokens and TLS (README.md "Security and limits").
+func TestKubernetesExample(t *testing.T) {
+	f, err := os.Open(filepath.Join("..", "..", "deploy", "kubernetes", "classwatch.yaml"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer f.Close()
+	dec := yaml.NewDecoder(f)
+	var text string
+	for {
+		var doc struct {
+			Kind string            `yaml:"kind"`
+			Data map[string]string `yaml:"data"`
+		}
+		if err := dec.Decode(&doc); err != nil {
+			break
+		}
+		if doc.Kind == "ConfigMap" {
+			text = doc.Data["classwatch.yml"]
+		}
+	}
+	if text == "" {
+		t.Fatal("no ConfigMap with classwatch.yml in the manifest")
+	}
+	cfg, err := parseConfig([]byte(text), configSource{secrets: true, getenv: func(k string) string { return "example-" + k }})
+	if err != nil {
+		t.Fatalf("the Kubernetes example's config: %v", err)
+	}
+	if !loopbackOnly(cfg.Listen) && (len(cfg.Ingest.Tokens) == 0 || len(cfg.Read.Tokens) == 0 || !cfg.TLS.enabled()) {
+		t.Errorf("the example listens on %s without ingest tokens, read tokens and TLS", cfg.Listen)
+	}
+}
+
+// TestREADMEConfigurationKeys checks that README.md's "Configuration"
+// section names every key the loader accepts, so a new key cannot go
+// undocumented. The alerts, notifiers and sources sections are described
+// in sections of their own.
+func TestREADMEConfigurationKeys(t *testing.T) {
+	readme, err := os.ReadFile(filepath.Join("..", "..", "README.md"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	text := string(readme)
+	start := strings.Index(text, "\n## Configuration\n")
+	if start < 0 {
+		t.Fatal(`README.md has no "## Configuration" section`)
+	}
+	section := text[start+1:]
+	if end := strings.Index(section[1:], "\n## "); end >= 0 {
+		section = section[:end+1]
+	}
+	// documented: the key's path or, for a model's key, ".key"; the keys
+	// of a list's items may instead appear in a {key, ...} form.
+	documented := func(path, key string, item bool) bool {
+		if strings.Contains(section, "`"+path+"`") || strings.Contains(section, "`"+path+"[]`") ||
+			strings.Contains(section, "`."+key+"`") {
+			return true
+		}
+		return item && regexp.MustCompile(`\{[^}]*\b`+key+`\b[^}]*\}`).MatchString(section)
+	}
+	var walk func(typ reflect.Type, prefix string, item bool)
+	walk = func(typ reflect.Type, prefix string, item bool) {
+		for i := range typ.NumField() {
+			f := typ.Field(i)
+			key, _, _ := strings.Cut(f.Tag.Get("yaml"), ",")
+			if key == "" || key == "-" {
+				continue
+			}
+			path := prefix + key
+			ft := f.Type
+			for ft.Kind() == reflect.Pointer {
+				ft = ft.Elem()
+			}
+			switch {
+			case ft == reflect.TypeOf(yaml.Node{}):
+			case ft.Kind() == reflect.Slice && ft.Elem().Kind() == reflect.Struct:
+				if key == "sources" {
+					break // its own section, "Stream source (NATS JetStream)"
+				}
+				walk(ft.Elem(), path+"[].", path != "models")
+				continue
+			case ft.Kind() == reflect.Struct:
+				walk(ft, path+".", false)
+				continue
+			}
+			if !documented(path, key, item) {
+				t.Errorf("README.md Configuration lacks %s", path)
+			}
+		}
+	}
+	walk(reflect.TypeOf(config{}), "", false)
 }
