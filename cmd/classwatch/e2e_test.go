@@ -382,30 +382,32 @@ func startDaemon(tb testing.TB, bin, cfg string) *runningDaemon {
 	case <-time.After(30 * time.Second):
 		tb.Fatalf("classwatch serve did not print its address within 30s\n%s", d.stderr)
 	}
-	d.waitReady(tb, 30*time.Second)
+	d.waitStarted(tb, 30*time.Second)
 	return d
 }
 
-// waitReady polls /readyz until it answers 200: the address is printed
-// before the store is reached and the routes are wired.
-func (d *runningDaemon) waitReady(tb testing.TB, limit time.Duration) {
+// waitStarted polls until the routes answer: the address is printed
+// before the store is reached and the routes are wired, and until then
+// every route but /healthz and /readyz answers 503. (/readyz itself may
+// stay 503 afterwards, for example while a stream source is down.)
+func (d *runningDaemon) waitStarted(tb testing.TB, limit time.Duration) {
 	tb.Helper()
 	deadline := time.Now().Add(limit)
 	for {
-		resp, err := http.Get(d.url + "/readyz")
+		resp, err := http.Get(d.url + "/v1/models")
 		if err == nil {
 			resp.Body.Close()
-			if resp.StatusCode == http.StatusOK {
+			if resp.StatusCode != http.StatusServiceUnavailable {
 				return
 			}
 		}
 		select {
 		case <-d.done:
-			tb.Fatalf("classwatch serve exited before it was ready: %v\n%s", d.waitErr, d.stderr)
+			tb.Fatalf("classwatch serve exited before it started: %v\n%s", d.waitErr, d.stderr)
 		case <-time.After(50 * time.Millisecond):
 		}
 		if time.Now().After(deadline) {
-			tb.Fatalf("classwatch serve not ready within %s (last: %v)\n%s", limit, err, d.stderr)
+			tb.Fatalf("classwatch serve not started within %s (last: %v)\n%s", limit, err, d.stderr)
 		}
 	}
 }

@@ -143,7 +143,7 @@ func TestPostgresOutageE2E(t *testing.T) {
 	if !unready {
 		t.Error("/readyz never answered 503 while PostgreSQL was down")
 	}
-	d.waitReady(t, 30*time.Second)
+	waitReady(t, d.url)
 
 	var acked, refused, unknown, raced int
 	for _, batches := range results {
