@@ -19,6 +19,14 @@ type ingestConfig struct {
 	// lie; 0 means no limit.
 	MaxFuture  duration `yaml:"max_future"`
 	RetryAfter duration `yaml:"retry_after"`
+	// MinBodyRate is the slowest rate, per second, at which a request
+	// body must arrive once BodyGrace has passed (else 408); 0 means no
+	// minimum.
+	MinBodyRate byteSize `yaml:"min_body_rate"`
+	BodyGrace   duration `yaml:"body_grace"`
+	// MaxBufferedBytes caps the bodies held in memory at once; 0 means
+	// 2 × max_in_flight × max_body_bytes.
+	MaxBufferedBytes byteSize `yaml:"max_buffered_bytes"`
 	// BatchLines is the transaction size of "classwatch ingest".
 	BatchLines int           `yaml:"batch_lines"`
 	Tokens     []tokenConfig `yaml:"tokens"`
@@ -51,6 +59,8 @@ func defaultIngest() ingestConfig {
 		MaxFuture:    duration(collector.DefaultMaxFuture),
 		RetryAfter:   duration(collector.DefaultRetryAfter),
 		BatchLines:   collector.DefaultBatchLines,
+		MinBodyRate:  collector.DefaultMinBodyRate,
+		BodyGrace:    duration(collector.DefaultBodyGrace),
 	}
 }
 
@@ -63,9 +73,16 @@ func (in ingestConfig) limits() collector.Limits {
 		QueueWait:    time.Duration(in.QueueWait),
 		MaxFuture:    time.Duration(in.MaxFuture),
 		RetryAfter:   time.Duration(in.RetryAfter),
+
+		MinBodyRate:      int64(in.MinBodyRate),
+		BodyGrace:        time.Duration(in.BodyGrace),
+		MaxBufferedBytes: int64(in.MaxBufferedBytes),
 	}
 	if in.MaxFuture == 0 {
 		l.MaxFuture = -1 // no limit
+	}
+	if in.MinBodyRate == 0 {
+		l.MinBodyRate = -1 // no minimum
 	}
 	return l
 }
@@ -111,6 +128,12 @@ func (in ingestConfig) validate(p *problems) {
 	}
 	if time.Duration(in.RetryAfter) < time.Second {
 		p.add("ingest.retry_after", "must be at least 1s")
+	}
+	if in.BodyGrace < 0 {
+		p.add("ingest.body_grace", "must not be negative")
+	}
+	if in.MaxBufferedBytes != 0 && in.MaxBufferedBytes < in.MaxBodyBytes {
+		p.add("ingest.max_buffered_bytes", "must be at least max_body_bytes (0 means 2 × max_in_flight × max_body_bytes)")
 	}
 	if in.BatchLines <= 0 {
 		p.add("ingest.batch_lines", "must be positive")

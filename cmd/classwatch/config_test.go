@@ -129,7 +129,8 @@ func TestFullConfig(t *testing.T) {
 	if !opts.AutoRegisterModels || opts.MaxModels != 12 || !reflect.DeepEqual(opts.Defaults, wantDefaults) {
 		t.Errorf("defaults = %v %+v, want true %+v", opts.AutoRegisterModels, opts.Defaults, wantDefaults)
 	}
-	wantLimits := collector.Limits{MaxBodyBytes: 8 << 20, MaxLineBytes: 64 << 10, MaxInFlight: 2, QueueWait: 2 * time.Second, MaxFuture: 5 * time.Minute, RetryAfter: 10 * time.Second}
+	wantLimits := collector.Limits{MaxBodyBytes: 8 << 20, MaxLineBytes: 64 << 10, MaxInFlight: 2, QueueWait: 2 * time.Second, MaxFuture: 5 * time.Minute, RetryAfter: 10 * time.Second,
+		MinBodyRate: collector.DefaultMinBodyRate, BodyGrace: collector.DefaultBodyGrace}
 	if opts.Limits != wantLimits {
 		t.Errorf("limits = %+v, want %+v", opts.Limits, wantLimits)
 	}

@@ -20,9 +20,6 @@ import (
 // Each teardown step has its own budget, so one slow step (a stalled
 // client, an unreachable webhook) cannot use up the next one's time.
 const (
-	// bodyGrace is how long request bodies still arriving at shutdown get
-	// before their reads are cut.
-	bodyGrace       = 2 * time.Second
 	httpDrainBudget = 10 * time.Second
 	streamsBudget   = 10 * time.Second
 	loopsBudget     = 5 * time.Second
@@ -168,23 +165,17 @@ func (d *daemon) warnExposure() {
 	}
 }
 
-// drain shuts the HTTP server down: new connections are refused, idle ones
-// closed, and requests in flight finish. Request bodies still arriving
-// after bodyGrace are cut, so a stalled sender cannot hold the drain; what
-// is left when the budget ends is closed. Neither is a failure of the
-// daemon, so neither makes the process exit non-zero.
+// drain shuts the HTTP server down: request bodies still arriving are cut
+// first (their senders get 503 with Retry-After and may resend), so a
+// stalled sender cannot hold the drain; then new connections are refused,
+// idle ones closed, and requests in flight finish. What is left when the
+// budget ends is closed. Neither is a failure of the daemon, so neither
+// makes the process exit non-zero.
 func (d *daemon) drain(ctx context.Context) error {
-	done := make(chan error, 1)
-	go func() { done <- d.server.Shutdown(ctx) }()
-	select {
-	case err := <-done:
-		return err
-	case <-time.After(bodyGrace):
-		if n := d.gate.cutBodies(); n > 0 {
-			d.log.Warn("shutdown: cut request bodies still arriving", "requests", n)
-		}
+	if d.collector != nil {
+		d.collector.CutBodies()
 	}
-	err := <-done
+	err := d.server.Shutdown(ctx)
 	if errors.Is(err, context.DeadlineExceeded) {
 		d.log.Warn("shutdown: HTTP drain budget spent; closing the remaining connections", "budget", httpDrainBudget.String())
 		return d.server.Close()

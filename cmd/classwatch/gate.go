@@ -3,11 +3,9 @@ package main
 import (
 	"crypto/subtle"
 	"encoding/json"
-	"io"
 	"net/http"
 	"strconv"
 	"strings"
-	"sync"
 	"sync/atomic"
 	"time"
 )
@@ -22,22 +20,17 @@ import (
 //     endpoints (which check their own tokens) needs one of them, as a
 //     bearer token or as the password of HTTP basic authentication (what a
 //     browser asks for).
-//   - It tracks request bodies still being received, so that shutdown can
-//     cut stalled senders first.
 type gate struct {
 	routes     atomic.Pointer[http.ServeMux] // nil while starting
 	starting   atomic.Pointer[string]        // why not ready while starting
 	health     *storeHealth
 	readTokens [][]byte
 	retryAfter string
-
-	mu     sync.Mutex
-	bodies map[*trackedBody]*http.ResponseController
 }
 
 // newGate returns a gate in the starting state.
 func newGate(health *storeHealth, readTokens []tokenConfig, retryAfter time.Duration) *gate {
-	g := &gate{health: health, retryAfter: formatSeconds(retryAfter), bodies: map[*trackedBody]*http.ResponseController{}}
+	g := &gate{health: health, retryAfter: formatSeconds(retryAfter)}
 	for _, t := range readTokens {
 		g.readTokens = append(g.readTokens, []byte(t.secret))
 	}
@@ -77,7 +70,6 @@ func (g *gate) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 			return
 		}
 	}
-	defer g.track(w, r)()
 	routes.ServeHTTP(w, r)
 }
 
@@ -114,69 +106,6 @@ func (g *gate) mayRead(r *http.Request) bool {
 		found |= subtle.ConstantTimeCompare([]byte(given), t)
 	}
 	return found == 1
-}
-
-// trackedBody is a request body that notes when it has been read to the
-// end (or failed).
-type trackedBody struct {
-	io.ReadCloser
-	done atomic.Bool
-}
-
-// Read reads from the body and notes its end.
-func (b *trackedBody) Read(p []byte) (int, error) {
-	n, err := b.ReadCloser.Read(p)
-	if err != nil {
-		b.done.Store(true)
-	}
-	return n, err
-}
-
-// track registers r's body, if it has one, until the returned function
-// runs.
-func (g *gate) track(w http.ResponseWriter, r *http.Request) func() {
-	if r.Body == nil || r.Body == http.NoBody {
-		return func() {}
-	}
-	b := &trackedBody{ReadCloser: r.Body}
-	r.Body = b
-	g.mu.Lock()
-	g.bodies[b] = http.NewResponseController(w)
-	g.mu.Unlock()
-	return func() {
-		g.mu.Lock()
-		delete(g.bodies, b)
-		g.mu.Unlock()
-	}
-}
-
-// receiving counts the request bodies not yet read to the end.
-func (g *gate) receiving() int {
-	g.mu.Lock()
-	defer g.mu.Unlock()
-	n := 0
-	for b := range g.bodies {
-		if !b.done.Load() {
-			n++
-		}
-	}
-	return n
-}
-
-// cutBodies ends the reads of every request body not yet received: their
-// connections' read deadlines pass now, so the handlers see an error and
-// answer. It returns how many it cut.
-func (g *gate) cutBodies() int {
-	g.mu.Lock()
-	defer g.mu.Unlock()
-	n := 0
-	for b, rc := range g.bodies {
-		if !b.done.Load() {
-			_ = rc.SetReadDeadline(time.Now())
-			n++
-		}
-	}
-	return n
 }
 
 // writeGateJSON answers with a JSON body.
