@@ -120,6 +120,11 @@ func Run(ctx context.Context, opts Options) (Report, error) {
 	if err != nil {
 		return rep, fmt.Errorf("list models: %w", err)
 	}
+	for _, p := range plans {
+		if p.rule.Model != alerts.AllModels && !slices.ContainsFunc(infos, func(i store.ModelInfo) bool { return i.Name == p.rule.Model }) {
+			return rep, fmt.Errorf("rule %s: model %s is not in the store", p.rule.Name, p.rule.Model)
+		}
+	}
 	for _, info := range infos {
 		var mine []*plan
 		for _, p := range plans {
@@ -133,12 +138,6 @@ func Run(ctx context.Context, opts Options) (Report, error) {
 		if err := replayModel(ctx, opts, info, mine); err != nil {
 			return rep, fmt.Errorf("replay model %s: %w", info.Name, err)
 		}
-	}
-	for _, p := range plans {
-		if p.rule.Model == alerts.AllModels || slices.ContainsFunc(infos, func(i store.ModelInfo) bool { return i.Name == p.rule.Model }) {
-			continue
-		}
-		return rep, fmt.Errorf("rule %s: model %s is not in the store", p.rule.Name, p.rule.Model)
 	}
 	for i := range rep.Rules {
 		slices.SortStableFunc(rep.Rules[i].Episodes, func(a, b Episode) int {
