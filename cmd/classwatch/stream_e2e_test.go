@@ -332,3 +332,35 @@ func TestStreamReadiness(t *testing.T) {
 	waitReady(t, d.url)
 	d.stop(t)
 }
+
+// TestStreamGracefulStop sends SIGTERM to a replica mid-stream: it exits
+// cleanly, and a second replica finishes the stream with exact figures.
+func TestStreamGracefulStop(t *testing.T) {
+	if testing.Short() {
+		t.Skip("builds and runs the binary; skipped with -short")
+	}
+	t.Parallel()
+	fx := loadE2EFixture(t)
+	srv := natstest.Start(t)
+	bin := buildBinary(t)
+	cfg := writeE2EConfig(t, fx, pgtest.URL(t))
+	addSource(t, cfg, srv.URL, "fetch_messages: 8; workers: 2; ack_wait: 3s")
+	shortQueueWait(t, cfg)
+	appendConfig(t, cfg, "refresh: 1s\n")
+	sc := newStreamClient(t, srv.URL)
+	createTestStream(t, sc)
+	publishFixture(t, sc, 150)
+
+	a := startDaemon(t, bin, cfg)
+	for metricValue(t, a.url, "classwatch_jetstream_messages_acked_total", "") < 20 {
+		time.Sleep(5 * time.Millisecond)
+	}
+	a.stop(t) // exit status 0 within 10 s
+	_, ackPending, _ := sc.consumerState(t)
+	t.Logf("after SIGTERM: %d messages delivered to the stopped replica and not acknowledged", ackPending)
+
+	b := startDaemon(t, bin, cfg)
+	sc.waitDrained(t, 2*time.Minute)
+	checkFinalFigures(t, bin, cfg, b.url, fx)
+	b.stop(t)
+}
