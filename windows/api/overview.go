@@ -37,7 +37,7 @@ Figures marked <dfn>all time</dfn> count everything stored for the model, not a 
 <tr class="first"><td class="model l" rowspan="{{.Rows}}"><a href="{{.Link}}">{{.Name}}</a>
 {{if .Firing}}<br><span class="tag firing">{{.Firing}} firing</span>{{end}}{{if .Pending}}<br><span class="tag pending">{{.Pending}} pending</span>{{end}}</td>
 <td class="l wrap" colspan="6">last prediction <span{{if .StalePrediction}} class="stale" title="older than the shortest window"{{end}}>{{.LastPrediction}}</span> · last label <span{{if .StaleLabel}} class="stale" title="older than the longest window"{{end}}>{{.LastLabel}}</span> · watermark {{.Watermark}} · all time: {{.Predictions}} predictions, {{.Labeled}} labeled ({{.Coverage}}) · {{.ClassCount}} classes</td></tr>
-{{range .Windows}}<tr><td class="l">{{.Name}}{{if .Matured}} <span class="note" title="ends {{.Lag}} before the watermark">matured, lag {{.Lag}}</span>{{end}}</td>
+{{range .Windows}}<tr><td class="l">{{.Name}}{{if .Matured}}<br><span class="note" title="ends {{.Lag}} before the watermark">matured, lag {{.Lag}}</span>{{end}}</td>
 <td>{{.Predictions}}</td><td>{{.Labeled}}</td><td>{{.Coverage}}</td><td>{{.Balanced}}</td>
 <td class="l worst">{{range .Worst}}<span>{{if .Alert}}<span class="tri" title="an alert names this class">▲</span> {{end}}{{.Name}} <b>{{.Recall}}</b> <span class="muted">({{.CI}}) n={{.N}}</span></span>{{else}}<span class="muted">no labeled example</span>{{end}}{{if .More}}<a class="note" href="{{$m.Link}}">+{{.More}} more</a>{{end}}</td></tr>
 {{end}}{{end}}

@@ -46,8 +46,10 @@ td.wrap { white-space:normal; }
 .alerts li.pending { border-left-style:dashed; }
 .models td.model { font-weight:600; }
 .models tr.first td { border-top:1.5px solid var(--ink); }
-td.worst { white-space:normal; min-width:22rem; }
-.worst > span { white-space:nowrap; margin-right:.7rem; display:inline-block; }
+table.models { width:100%; }
+td.worst { white-space:normal; width:50%; }
+.worst > span { white-space:nowrap; margin-right:.9rem; display:inline-block; }
+.worst .muted { font-size:.85em; }
 .grid { display:flex; flex-wrap:wrap; gap:.6rem 1.6rem; align-items:flex-start; }
 .grid figure { margin:0; }
 figcaption { font-size:.85rem; color:var(--muted); margin-bottom:.2rem; }
