@@ -11,10 +11,14 @@ import (
 )
 
 // bucketChanges returns one bucket's changes of a model with the given
-// classes: 40 labeled predictions and, with scores, their score histograms
-// (every class, one bin each), calibration bins and Brier sum.
+// classes as a store commits them, net per cell, bin and bucket: 40
+// labeled predictions and, with scores, their score histograms (every
+// class), calibration bins and Brier sum.
 func bucketChanges(rng *rand.Rand, model string, classes []string, b time.Time, scores bool) store.Changes {
 	var ch store.Changes
+	hist := make(map[store.ScoreDelta]int64)
+	calib := make(map[int]*store.CalibrationDelta)
+	brier := store.BrierDelta{Model: model, Bucket: b}
 	for range 40 {
 		a, p := classes[rng.IntN(len(classes))], classes[rng.IntN(len(classes))]
 		ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: b, Actual: a, Predicted: p, N: 1})
@@ -23,11 +27,28 @@ func bucketChanges(rng *rand.Rand, model string, classes []string, b time.Time, 
 			continue
 		}
 		for _, c := range classes {
-			ch.Scores = append(ch.Scores, store.ScoreDelta{Model: model, Bucket: b, Class: c, Bin: rng.IntN(store.ScoreBins), N: 1})
+			hist[store.ScoreDelta{Model: model, Bucket: b, Class: c, Bin: rng.IntN(store.ScoreBins)}]++
 		}
 		s := rng.Float64()
-		ch.Calibration = append(ch.Calibration, store.CalibrationDelta{Model: model, Bucket: b, Bin: store.ScoreBin(s), N: 1, ScoreSum: s, Correct: int64(rng.IntN(2))})
-		ch.Brier = append(ch.Brier, store.BrierDelta{Model: model, Bucket: b, N: 1, Sum: rng.Float64()})
+		bin := store.ScoreBin(s)
+		if calib[bin] == nil {
+			calib[bin] = &store.CalibrationDelta{Model: model, Bucket: b, Bin: bin}
+		}
+		calib[bin].N++
+		calib[bin].ScoreSum += s
+		calib[bin].Correct += int64(rng.IntN(2))
+		brier.N++
+		brier.Sum += rng.Float64()
+	}
+	for d, n := range hist {
+		d.N = n
+		ch.Scores = append(ch.Scores, d)
+	}
+	for _, d := range calib {
+		ch.Calibration = append(ch.Calibration, *d)
+	}
+	if brier.N > 0 {
+		ch.Brier = append(ch.Brier, brier)
 	}
 	return ch
 }
