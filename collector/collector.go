@@ -109,27 +109,25 @@ type Limits struct {
 	MaxBufferedBytes int64
 }
 
-// CommitFunc runs txFunc, the store transaction of one batch or job, which
-// returns the committed changes and, for a prediction batch, each touched
-// model's greatest "at" among the predictions it newly stored. The hook
-// wraps the transaction so that it can act on both sides of it: the rolling
-// windows (windows.Tracker.Commit) hold their commit gate from before the
-// transaction begins until they have applied its changes. It must call
-// txFunc exactly once and return txFunc's error; when it returns an error
-// the collector answers as if the store had failed. It is called
-// synchronously before the request is answered, possibly from several
-// goroutines at once.
-type CommitFunc func(txFunc func() (store.Changes, map[string]time.Time, error)) error
-
-// RegisterFunc receives a model's full class list when the collector first
-// learns it and each time it grows. It is called with the collector's
-// registration lock held: it must not call back into the collector.
-type RegisterFunc func(model string, classes []string)
+// Store is what the collector needs of a store (windows/store.Store has
+// it). The daemon passes a windows.TrackedStore, which applies each
+// committed change to the rolling windows and each class list to their
+// axes before the call returns; data flows from the collector into the
+// store and the windows, never back.
+type Store interface {
+	EnsureModel(ctx context.Context, model string, classes []string, maxClasses int) ([]string, error)
+	Models(ctx context.Context) ([]store.ModelInfo, error)
+	IngestPredictions(ctx context.Context, batch []store.Prediction, now time.Time) (store.PredictionResult, error)
+	IngestLabels(ctx context.Context, batch []store.Label, now time.Time) (store.LabelResult, error)
+	ApplyLabelTimeout(ctx context.Context, model, label string, timeout time.Duration, now time.Time) (int64, store.Changes, error)
+	ExpireEarlyLabels(ctx context.Context, model string, ttl time.Duration, now time.Time) (int64, error)
+	PurgeRaw(ctx context.Context, model string, cutoff time.Time) (int64, error)
+}
 
 // Options configure a Collector.
 type Options struct {
 	// Store is where batches are written; required.
-	Store store.Store
+	Store Store
 	// Models are the configured models.
 	Models []ModelPolicy
 	// Defaults is the policy of models that are not configured: those
@@ -153,28 +151,21 @@ type Options struct {
 	Logger *slog.Logger
 	// Now is the clock for receive times; defaults to time.Now.
 	Now func() time.Time
-	// CommitFunc and RegisterFunc are optional hooks. Every store
-	// transaction that changes counts (ingest batches, default labels) runs
-	// through CommitFunc.
-	CommitFunc   CommitFunc
-	RegisterFunc RegisterFunc
 }
 
 // Collector validates and ingests predictions and labels. It is safe for
 // concurrent use by multiple goroutines.
 type Collector struct {
-	store        store.Store
-	configured   map[string]ModelPolicy
-	defaults     ModelPolicy
-	autoModels   bool
-	maxModels    int
-	tokens       []tokenHash
-	limits       Limits
-	log          *slog.Logger
-	now          func() time.Time
-	commitFunc   CommitFunc
-	registerFunc RegisterFunc
-	metrics      *metrics
+	store      Store
+	configured map[string]ModelPolicy
+	defaults   ModelPolicy
+	autoModels bool
+	maxModels  int
+	tokens     []tokenHash
+	limits     Limits
+	log        *slog.Logger
+	now        func() time.Time
+	metrics    *metrics
 	// slots holds one element per running batch (MaxInFlight capacity).
 	slots chan struct{}
 	// bodies tracks the request bodies being read.
@@ -183,7 +174,7 @@ type Collector struct {
 	batches sync.Pool
 
 	// ensureMu serializes registration so that two batches bringing the
-	// same new class register it once and RegisterFunc sees each growth
+	// same new class register it once and the store sees each growth
 	// once, in order.
 	ensureMu sync.Mutex
 	// mu guards models and latest. A modelState is never changed once
@@ -281,19 +272,17 @@ func New(opts Options) (*Collector, error) {
 		return nil, errors.New("collector limits must not be negative")
 	}
 	c := &Collector{
-		store:        opts.Store,
-		configured:   make(map[string]ModelPolicy, len(opts.Models)),
-		defaults:     withDefaults(opts.Defaults),
-		autoModels:   opts.AutoRegisterModels,
-		maxModels:    opts.MaxModels,
-		limits:       l,
-		log:          cmp.Or(opts.Logger, slog.New(slog.DiscardHandler)),
-		now:          opts.Now,
-		commitFunc:   opts.CommitFunc,
-		registerFunc: opts.RegisterFunc,
-		slots:        make(chan struct{}, l.MaxInFlight),
-		models:       map[string]*modelState{},
-		latest:       map[string]time.Time{},
+		store:      opts.Store,
+		configured: make(map[string]ModelPolicy, len(opts.Models)),
+		defaults:   withDefaults(opts.Defaults),
+		autoModels: opts.AutoRegisterModels,
+		maxModels:  opts.MaxModels,
+		limits:     l,
+		log:        cmp.Or(opts.Logger, slog.New(slog.DiscardHandler)),
+		now:        opts.Now,
+		slots:      make(chan struct{}, l.MaxInFlight),
+		models:     map[string]*modelState{},
+		latest:     map[string]time.Time{},
 	}
 	if c.now == nil {
 		c.now = time.Now
@@ -357,7 +346,7 @@ func checkPolicy(p ModelPolicy) error {
 
 // Prepare registers every configured model and its classes in the store,
 // loads the models the store already knows (auto-registered ones too when
-// AutoRegisterModels), and reports each to RegisterFunc. Lines for a model
+// AutoRegisterModels). Lines for a model
 // not prepared yet register it on first use, so Prepare is what makes
 // configured models visible before their first line.
 func (c *Collector) Prepare(ctx context.Context) error {
@@ -479,9 +468,6 @@ func (c *Collector) ensure(ctx context.Context, model string, want []string) (re
 	c.mu.Unlock()
 	if old == nil {
 		c.metrics.initModel(model)
-	}
-	if c.registerFunc != nil {
-		c.registerFunc(model, slices.Clone(classes))
 	}
 	return refused, nil
 }

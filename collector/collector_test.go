@@ -16,7 +16,6 @@ import (
 	"slices"
 	"strings"
 	"sync"
-	"sync/atomic"
 	"testing"
 	"time"
 
@@ -100,7 +99,72 @@ type bundle struct {
 
 type commit struct {
 	changes store.Changes
-	latest  map[string]time.Time
+}
+
+// recordingStore passes every call to the real store and records what the
+// rolling windows would get from it: the committed changes that moved
+// counts, and each class list.
+type recordingStore struct {
+	store.Store
+	b *bundle
+}
+
+func (r recordingStore) record(ch store.Changes) {
+	if len(ch.Cells)+len(ch.Predicted) == 0 {
+		return
+	}
+	r.b.mu.Lock()
+	defer r.b.mu.Unlock()
+	r.b.commits = append(r.b.commits, commit{ch})
+}
+
+func (r recordingStore) EnsureModel(ctx context.Context, model string, classes []string, maxClasses int) ([]string, error) {
+	list, err := r.Store.EnsureModel(ctx, model, classes, maxClasses)
+	if err == nil {
+		r.b.mu.Lock()
+		defer r.b.mu.Unlock()
+		r.b.registers[model] = list
+	}
+	return list, err
+}
+
+func (r recordingStore) IngestPredictions(ctx context.Context, batch []store.Prediction, now time.Time) (store.PredictionResult, error) {
+	out, err := r.Store.IngestPredictions(ctx, batch, now)
+	if err == nil {
+		r.record(out.Changes)
+	}
+	return out, err
+}
+
+func (r recordingStore) IngestLabels(ctx context.Context, batch []store.Label, now time.Time) (store.LabelResult, error) {
+	out, err := r.Store.IngestLabels(ctx, batch, now)
+	if err == nil {
+		r.record(out.Changes)
+	}
+	return out, err
+}
+
+func (r recordingStore) ApplyLabelTimeout(ctx context.Context, model, label string, timeout time.Duration, now time.Time) (int64, store.Changes, error) {
+	n, ch, err := r.Store.ApplyLabelTimeout(ctx, model, label, timeout, now)
+	if err == nil {
+		r.record(ch)
+	}
+	return n, ch, err
+}
+
+// pausingStore calls pause after each prediction batch committed, before
+// the collector goes on.
+type pausingStore struct {
+	collector.Store
+	pause func()
+}
+
+func (p pausingStore) IngestPredictions(ctx context.Context, batch []store.Prediction, now time.Time) (store.PredictionResult, error) {
+	out, err := p.Store.IngestPredictions(ctx, batch, now)
+	if err == nil {
+		p.pause()
+	}
+	return out, err
 }
 
 func openStore(tb testing.TB, path string) *sqlitestore.Store {
@@ -131,26 +195,10 @@ func setup(tb testing.TB, be backend, edit func(*collector.Options)) *bundle {
 	b := &bundle{reg: prometheus.NewRegistry(), registers: map[string][]string{}}
 	b.store, b.reopen = be.open(tb)
 	opts := collector.Options{
-		Store:      b.store,
+		Store:      recordingStore{Store: b.store, b: b},
 		Models:     testModels(),
 		Registerer: b.reg,
 		Now:        receiveTime,
-		// The hook records the committed transactions that changed counts.
-		CommitFunc: func(txFunc func() (store.Changes, map[string]time.Time, error)) error {
-			ch, latest, err := txFunc()
-			if err != nil || len(ch.Cells)+len(ch.Predicted)+len(latest) == 0 {
-				return err
-			}
-			b.mu.Lock()
-			defer b.mu.Unlock()
-			b.commits = append(b.commits, commit{ch, latest})
-			return nil
-		},
-		RegisterFunc: func(model string, classes []string) {
-			b.mu.Lock()
-			defer b.mu.Unlock()
-			b.registers[model] = classes
-		},
 	}
 	if edit != nil {
 		edit(&opts)
@@ -333,17 +381,14 @@ func testPredictionsMixedLines(t *testing.T, be backend) {
 	b.mu.Lock()
 	defer b.mu.Unlock()
 	if len(b.commits) != 1 {
-		t.Fatalf("commit hook calls = %d, want 1", len(b.commits))
-	}
-	if got := b.commits[0].latest["card-fraud"]; !got.Equal(time.Date(2026, 3, 1, 12, 0, 0, 0, time.UTC)) {
-		t.Errorf("commit hook latest = %v", got)
+		t.Fatalf("commits that changed counts = %d, want 1", len(b.commits))
 	}
 	var predicted int64
 	for _, d := range b.commits[0].changes.Predicted {
 		predicted += d.N
 	}
 	if predicted != 2 {
-		t.Errorf("commit hook predicted deltas sum to %d, want 2", predicted)
+		t.Errorf("committed predicted deltas sum to %d, want 2", predicted)
 	}
 }
 
@@ -623,12 +668,10 @@ func testOverload(t *testing.T, be backend) {
 		o.Limits.MaxInFlight = 1
 		o.Limits.QueueWait = 50 * time.Millisecond
 		o.Limits.RetryAfter = 2 * time.Second
-		o.CommitFunc = func(txFunc func() (store.Changes, map[string]time.Time, error)) error {
-			_, _, err := txFunc()
+		o.Store = pausingStore{Store: o.Store, pause: func() {
 			entered <- struct{}{}
 			<-gate
-			return err
-		}
+		}}
 	})
 	first := make(chan int, 1)
 	go func() {
@@ -665,51 +708,6 @@ func testOverload(t *testing.T, be backend) {
 	}
 	if got := testutil.ToFloat64(metric(t, b, "classwatch_collector_in_flight_batches")); got != 0 {
 		t.Errorf("in flight after the batches = %v, want 0", got)
-	}
-}
-
-func TestCommitHookFailure(t *testing.T) { eachStore(t, testCommitHookFailure) }
-
-// testCommitHookFailure checks that a batch is answered 2xx only when the
-// commit hook ran the transaction and returned nil.
-func testCommitHookFailure(t *testing.T, be backend) {
-	const (
-		runs = iota
-		skips
-		refuses
-	)
-	var mode atomic.Int32 // read by the handler's goroutine
-	b := setup(t, be, func(o *collector.Options) {
-		o.CommitFunc = func(txFunc func() (store.Changes, map[string]time.Time, error)) error {
-			switch mode.Load() {
-			case skips:
-				return nil
-			case refuses:
-				return errors.New("windows refused the commit")
-			}
-			_, _, err := txFunc()
-			return err
-		}
-	})
-	for _, c := range []struct {
-		name string
-		mode int32
-	}{
-		{"hook skips the transaction", skips},
-		{"hook fails", refuses},
-	} {
-		mode.Store(c.mode)
-		code, r, h := b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"unsure","predicted":"legit"}`)
-		if code != http.StatusServiceUnavailable || h.Get("Retry-After") == "" || r.Accepted != 0 {
-			t.Errorf("%s: %d %q %+v, want 503 with Retry-After", c.name, code, h.Get("Retry-After"), r)
-		}
-	}
-	if got := b.modelInfo(t, "card-fraud").Predictions; got != 0 {
-		t.Errorf("stored predictions = %d, want 0: no hook ran the transaction", got)
-	}
-	mode.Store(runs)
-	if code, r, _ := b.post(t, "/v1/predictions", ndjson, `{"model":"card-fraud","id":"unsure","predicted":"legit"}`); code != 200 || r.Accepted != 1 {
-		t.Errorf("with a working hook: %d %+v, want 200 with 1 accepted", code, r)
 	}
 }
 

@@ -5,7 +5,7 @@
 // early-label expiry, raw-row retention).
 //
 // Every source feeds the same path (decode → validate → one store
-// transaction → the commit hook): Submit takes one body, as the HTTP
+// transaction → rolling windows): Submit takes one body, as the HTTP
 // handlers (Register) and stream consumers have it; Ingest takes a file of
 // any size in transactions of BatchOptions.BatchLines lines, for backfills.
 // So a line is judged the same way whichever way it came in, and the body
@@ -63,13 +63,12 @@
 //
 // A batch is answered 2xx only after its transaction committed. Class
 // registration (auto_register) happens before the batch's transaction and
-// stays even if the batch then fails. Every transaction that changes counts
-// (a batch, the default labels of Maintain) runs inside Options.CommitFunc,
-// which the daemon sets to the rolling windows' Commit: the windows apply
-// the batch's changes before the hook returns, so they count every commit
-// exactly once even while they refresh from the store. An error from the
-// hook, or a hook that returns without running the transaction, is
-// answered like a store failure (503).
+// stays even if the batch then fails. The collector writes through the small
+// Store interface it declares; the daemon passes a windows.TrackedStore,
+// which applies each committed transaction that changes counts (a batch, the
+// default labels of Maintain) to the rolling windows before the call
+// returns, so they count every commit exactly once even while they refresh
+// from the store. Data flows one way: collector → store and windows.
 //
 // # Validation
 //

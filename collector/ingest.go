@@ -403,15 +403,12 @@ func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time
 	endpoint := run.kind.String()
 	accepted, duplicates := res.Accepted, res.Duplicates
 	if len(b.items) > 0 {
-		err := c.commit(func() (store.Changes, map[string]time.Time, error) {
-			if run.kind == Labels {
-				ch, err := c.commitLabels(ctx, b, now, res)
-				return ch, nil, err
-			}
-			ch, stored, err := c.commitPredictions(ctx, b, now, res)
-			latest = stored
-			return ch, stored, err
-		})
+		var err error
+		if run.kind == Labels {
+			err = c.commitLabels(ctx, b, now, res)
+		} else {
+			latest, err = c.commitPredictions(ctx, b, now, res)
+		}
 		if err != nil {
 			if ctx.Err() == nil {
 				c.metrics.storeErrors.WithLabelValues("ingest_" + endpoint).Inc()
@@ -446,33 +443,16 @@ func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time
 	return nil
 }
 
-// commit runs txFunc, a store transaction, through the CommitFunc hook
-// when there is one. A hook that returns without running txFunc gets an
-// error: the batch would otherwise be answered as stored.
-func (c *Collector) commit(txFunc func() (store.Changes, map[string]time.Time, error)) error {
-	if c.commitFunc == nil {
-		_, _, err := txFunc()
-		return err
-	}
-	ran := false
-	err := c.commitFunc(func() (store.Changes, map[string]time.Time, error) {
-		ran = true
-		return txFunc()
-	})
-	if err == nil && !ran {
-		return errors.New("commit hook returned without running the transaction")
-	}
-	return err
-}
-
-func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Time, res *Result) (store.Changes, map[string]time.Time, error) {
+// commitPredictions stores the batch's predictions in one transaction and
+// returns each model's greatest time among those it newly stored.
+func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Time, res *Result) (map[string]time.Time, error) {
 	in := b.preds
 	out, err := c.store.IngestPredictions(ctx, in, now)
 	if err != nil {
-		return store.Changes{}, nil, fmt.Errorf("ingest predictions: %w", err)
+		return nil, fmt.Errorf("ingest predictions: %w", err)
 	}
 	if len(out.Outcomes) != len(in) {
-		return store.Changes{}, nil, fmt.Errorf("ingest predictions: %d outcomes for %d lines", len(out.Outcomes), len(in))
+		return nil, fmt.Errorf("ingest predictions: %d outcomes for %d lines", len(out.Outcomes), len(in))
 	}
 	latest := map[string]time.Time{}
 	received := counterCache{vec: c.metrics.predictionsReceived}
@@ -493,7 +473,7 @@ func (c *Collector) commitPredictions(ctx context.Context, b *batch, now time.Ti
 		}
 		received.get(p.Model).Inc()
 	}
-	return out.Changes, latest, nil
+	return latest, nil
 }
 
 // counterCache memoizes the counter of one label value over a batch, whose
@@ -511,14 +491,15 @@ func (cc *counterCache) get(value string) prometheus.Counter {
 	return cc.ctr
 }
 
-func (c *Collector) commitLabels(ctx context.Context, b *batch, now time.Time, res *Result) (store.Changes, error) {
+// commitLabels applies the batch's labels in one transaction.
+func (c *Collector) commitLabels(ctx context.Context, b *batch, now time.Time, res *Result) error {
 	in := b.labels
 	out, err := c.store.IngestLabels(ctx, in, now)
 	if err != nil {
-		return store.Changes{}, fmt.Errorf("ingest labels: %w", err)
+		return fmt.Errorf("ingest labels: %w", err)
 	}
 	if len(out.Outcomes) != len(in) {
-		return store.Changes{}, fmt.Errorf("ingest labels: %d outcomes for %d lines", len(out.Outcomes), len(in))
+		return fmt.Errorf("ingest labels: %d outcomes for %d lines", len(out.Outcomes), len(in))
 	}
 	type result struct {
 		model   string
@@ -536,5 +517,5 @@ func (c *Collector) commitLabels(ctx context.Context, b *batch, now time.Time, r
 	for r, n := range received {
 		c.metrics.labelsReceived.WithLabelValues(r.model, r.outcome.String()).Add(float64(n))
 	}
-	return out.Changes, nil
+	return nil
 }

@@ -7,7 +7,6 @@ import (
 	"time"
 
 	"github.com/classwatch/classwatch/windows"
-	"github.com/classwatch/classwatch/windows/store"
 )
 
 // Maintain runs the join's jobs once, at time now, for every model the
@@ -16,7 +15,7 @@ import (
 //
 //   - with DefaultLabel and LabelTimeout: predictions unlabeled for
 //     LabelTimeout get the default label, counted as result="implied", in
-//     a transaction run through CommitFunc;
+//     one store transaction;
 //   - with EarlyLabelTTL: early labels received EarlyLabelTTL ago whose
 //     prediction never came are dropped, counted as result="expired";
 //   - with Retention: raw predictions in buckets that ended Retention ago
@@ -52,12 +51,7 @@ func (c *Collector) Maintain(ctx context.Context, now time.Time) error {
 func (c *Collector) maintainModel(ctx context.Context, p ModelPolicy, now time.Time) error {
 	var errs []error
 	if p.DefaultLabel != "" && p.LabelTimeout > 0 {
-		var n int64
-		err := c.commit(func() (store.Changes, map[string]time.Time, error) {
-			labeled, ch, err := c.store.ApplyLabelTimeout(ctx, p.Name, p.DefaultLabel, p.LabelTimeout, now)
-			n = labeled
-			return ch, nil, err
-		})
+		n, _, err := c.store.ApplyLabelTimeout(ctx, p.Name, p.DefaultLabel, p.LabelTimeout, now)
 		if err != nil {
 			c.metrics.storeErrors.WithLabelValues("apply_label_timeout").Inc()
 			errs = append(errs, fmt.Errorf("apply label timeout: %w", err))
@@ -96,25 +90,4 @@ func (c *Collector) maintainModel(ctx context.Context, p ModelPolicy, now time.T
 // retention.
 func retentionCutoff(p ModelPolicy, now time.Time) time.Time {
 	return windows.BucketStart(now.Add(-p.Retention), p.Bucket)
-}
-
-// RunMaintenance calls Maintain at once and then every interval, with the
-// collector's clock, until ctx ends; it logs failures and returns nil when
-// ctx is done.
-func (c *Collector) RunMaintenance(ctx context.Context, interval time.Duration) error {
-	if interval <= 0 {
-		return fmt.Errorf("maintenance interval must be positive, not %s", interval)
-	}
-	t := time.NewTicker(interval)
-	defer t.Stop()
-	for {
-		if err := c.Maintain(ctx, c.now()); err != nil && ctx.Err() == nil {
-			c.log.Warn("maintenance jobs", "err", err)
-		}
-		select {
-		case <-ctx.Done():
-			return nil
-		case <-t.C:
-		}
-	}
 }

@@ -7,7 +7,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/testutil"
 
 	"github.com/classwatch/classwatch/collector"
@@ -88,7 +87,7 @@ func testMaintain(t *testing.T, be backend) {
 	b.mu.Lock()
 	defer b.mu.Unlock()
 	if len(b.commits) != 1 {
-		t.Fatalf("commit hook calls = %d, want 1 (the implied label)", len(b.commits))
+		t.Fatalf("commits that changed counts = %d, want 1 (the implied label)", len(b.commits))
 	}
 	ch := b.commits[0].changes
 	if len(ch.Cells) != 1 || ch.Cells[0].Actual != "legit" || ch.Cells[0].Predicted != "fraud" || ch.Cells[0].N != 1 {
@@ -108,37 +107,5 @@ func testMaintainFailure(t *testing.T, be backend) {
 	}
 	if got := testutil.ToFloat64(metric(t, b, "classwatch_collector_maintenance_last_success_timestamp_seconds")); got != 0 {
 		t.Errorf("last success = %v, want 0", got)
-	}
-}
-
-func TestRunMaintenance(t *testing.T) {
-	path := t.TempDir() + "/run.db"
-	st := openStore(t, path)
-	ctx, cancel := context.WithCancel(context.Background())
-	defer cancel()
-	calls := 0
-	col, err := collector.New(collector.Options{
-		Store:      st,
-		Registerer: prometheus.NewRegistry(),
-		// The clock is read once per run: stop after the third.
-		Now: func() time.Time {
-			calls++
-			if calls == 3 {
-				cancel()
-			}
-			return receiveTime()
-		},
-	})
-	if err != nil {
-		t.Fatal(err)
-	}
-	if err := col.RunMaintenance(ctx, time.Millisecond); err != nil {
-		t.Errorf("RunMaintenance = %v, want nil after cancel", err)
-	}
-	if calls != 3 {
-		t.Errorf("runs = %d, want 3", calls)
-	}
-	if err := col.RunMaintenance(context.Background(), 0); err == nil {
-		t.Errorf("RunMaintenance with a zero interval succeeded")
 	}
 }

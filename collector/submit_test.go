@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"net/http"
 	"strings"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -67,19 +68,17 @@ func TestSubmitRefusals(t *testing.T) { eachStore(t, testSubmitRefusals) }
 func testSubmitRefusals(t *testing.T, be backend) {
 	entered := make(chan struct{}, 1)
 	gate := make(chan struct{})
-	hold := false
+	var hold atomic.Bool
 	b := setup(t, be, func(o *collector.Options) {
 		o.Limits.MaxInFlight = 1
 		o.Limits.QueueWait = 20 * time.Millisecond
 		o.Limits.MaxBodyBytes = 4096
-		o.CommitFunc = func(txFunc func() (store.Changes, map[string]time.Time, error)) error {
-			_, _, err := txFunc()
-			if hold {
+		o.Store = pausingStore{Store: o.Store, pause: func() {
+			if hold.Load() {
 				entered <- struct{}{}
 				<-gate
 			}
-			return err
-		}
+		}}
 	})
 	ctx := context.Background()
 	line := `{"model":"card-fraud","id":"big","predicted":"legit"}` + "\n"
@@ -92,7 +91,7 @@ func testSubmitRefusals(t *testing.T, be backend) {
 		t.Errorf("cut JSON array: %v, want *BodyError", err)
 	}
 
-	hold = true
+	hold.Store(true)
 	done := make(chan error, 1)
 	go func() {
 		_, err := b.col.Submit(ctx, collector.Predictions, strings.NewReader(`{"model":"card-fraud","id":"slow","predicted":"legit"}`), collector.SubmitOptions{})
@@ -106,7 +105,7 @@ func testSubmitRefusals(t *testing.T, be backend) {
 	if err := <-done; err != nil {
 		t.Errorf("first body: %v", err)
 	}
-	hold = false
+	hold.Store(false)
 
 	b.store.Close()
 	_, err = b.col.Submit(ctx, collector.Labels, strings.NewReader(`{"model":"card-fraud","id":"slow","actual":"legit"}`), collector.SubmitOptions{})

@@ -16,7 +16,7 @@ import (
 // changes and, per model, the greatest prediction time it stored, and then
 // passes them to Apply, all with the commit gate held, so that a concurrent
 // Refresh counts the commit exactly once (see the Tracker documentation).
-// It is the collector's commit hook (collector.CommitFunc). When txFunc
+// TrackedStore runs its writes through it. When txFunc
 // fails nothing is applied and its error is returned as it is. txFunc must
 // not call Commit, Load or Refresh.
 func (t *Tracker) Commit(txFunc func() (store.Changes, map[string]time.Time, error)) error {

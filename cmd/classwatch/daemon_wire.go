@@ -76,11 +76,9 @@ func (d *daemon) buildIngest(ctx context.Context, reg prometheus.Registerer) err
 		return fmt.Errorf("build windows: %w", err)
 	}
 	copts := d.cfg.collectorOptions()
-	copts.Store = d.store
+	copts.Store = d.tracker.Track(d.store) // committed changes reach the windows
 	copts.Registerer = reg
 	copts.Logger = d.log
-	copts.CommitFunc = d.tracker.Commit
-	copts.RegisterFunc = d.tracker.SetClasses
 	d.collector, err = collector.New(copts)
 	if err != nil {
 		return fmt.Errorf("build collector: %w", err)
