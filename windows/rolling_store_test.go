@@ -52,7 +52,7 @@ type traffic struct {
 
 var sorterClasses = []string{"intact", "damaged", "mislabeled"}
 
-// commitHook is the collector's commit hook (collector.CommitFunc):
+// commitHook runs one store transaction and passes its changes on:
 // Tracker.Commit, or a test's own.
 type commitHook func(txFunc func() (store.Changes, map[string]time.Time, error)) error
 
