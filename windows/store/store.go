@@ -30,6 +30,18 @@
 //
 // As of time T, a prediction's label is its latest real version with at ≤ T,
 // else its implied version when that version's at ≤ T.
+//
+// # Score aggregates
+//
+// Predictions that carry scores also count in per-bucket score aggregates
+// (ScoreCount, CalibrationCount, BrierSum), maintained like the cells:
+// score histograms when the prediction is stored; calibration and Brier
+// entries with its current label, in the same transaction, so a correction
+// moves the prediction's entry from the old label to the new one, an
+// implied or early label counts like any other, a duplicate changes
+// nothing, and PurgeRaw keeps them. Predictions without scores count in
+// none of them. Sums are kept as whole numbers of 1e-9 units (see Nano), so
+// corrections and Verify are exact.
 package store
 
 import (
@@ -287,12 +299,21 @@ type ModelInfo struct {
 // value recomputed from raw rows.
 type Difference struct {
 	Model string
-	// Kind is "cell" or "predicted".
+	// Kind is "cell", "predicted", "score" (a score histogram count),
+	// "calibration" or "brier".
 	Kind      string
 	Bucket    time.Time
 	Segment   string
-	Actual    string // empty for Kind "predicted"
-	Predicted string
+	Actual    string // Kind "cell" only
+	Predicted string // Kind "cell" and "predicted"
+	// Class and Bin address Kind "score" (Class) and "calibration" (Bin)
+	// entries.
+	Class string
+	Bin   int
+	// Measure names the figure that differs for Kind "calibration" ("n",
+	// "score_sum", "correct", "brier") and "brier" ("n", "sum"); sums are
+	// in 1e-9 units (see Nano).
+	Measure   string
 	Stored    int64
 	Recounted int64
 }

@@ -16,6 +16,10 @@
 //	early_labels      versions whose prediction has not arrived
 //	cells             maintained counts per (model, bucket, segment, actual,
 //	predicted_counts  predicted) and per (model, bucket, segment, predicted)
+//	score_counts      score histograms per (model, bucket, segment, class,
+//	                  bin); bin 0 is derived from predicted_counts.scored
+//	score_labels      calibration and Brier sums per (model, bucket,
+//	                  segment, bin), moved with the current label
 //
 // A prediction batch is one COPY into predictions, whose primary key both
 // stores the lines and proves them new; only when it refuses a line does

@@ -3,6 +3,8 @@ package pgstore
 import (
 	"cmp"
 	"context"
+	"encoding/json"
+	"fmt"
 	"slices"
 	"strings"
 	"time"
@@ -110,6 +112,7 @@ type target struct {
 	segment, predicted string
 	versions           []version
 	seq                int32   // the greatest seq of its versions (0: none)
+	scores             []byte  // the stored scores' JSON, nil if none
 	before             version // current label before the batch
 	had                bool
 }
@@ -203,8 +206,11 @@ func (s *Store) applyLabels(ctx context.Context, tx *pgx.Conn, batch []store.Lab
 	var v versionRows
 	early := decideLabels(batch, keys, lineKey, targets, &v, out)
 	for _, tg := range targets {
-		if tg != nil {
-			tallyTarget(tg, t)
+		if tg == nil {
+			continue
+		}
+		if err := tallyTarget(tg, t); err != nil {
+			return err
 		}
 	}
 	if err := v.copy(ctx, tx); err != nil {
@@ -346,16 +352,37 @@ func decideLabels(batch []store.Label, keys []labelKey, lineKey []int, targets [
 	return early
 }
 
-// tallyTarget counts the move of a prediction's cell from its current
-// label before the batch to its current label after it.
-func tallyTarget(tg *target, t *tally) {
+// tallyTarget counts the move of a prediction's cell, and of its
+// calibration and Brier entry when it has scores, from its current label
+// before the batch to its current label after it.
+func tallyTarget(tg *target, t *tally) error {
 	after, has := current(tg.versions)
-	if tg.had && (!has || after.actual != tg.before.actual) {
+	if !has || (tg.had && after.actual == tg.before.actual) {
+		return nil
+	}
+	if tg.had {
 		t.addCell(tg.model, tg.bucket, tg.segment, tg.before.actual, tg.predicted, -1)
 	}
-	if has && (!tg.had || after.actual != tg.before.actual) {
-		t.addCell(tg.model, tg.bucket, tg.segment, after.actual, tg.predicted, 1)
+	t.addCell(tg.model, tg.bucket, tg.segment, after.actual, tg.predicted, 1)
+	if tg.scores == nil {
+		return nil
 	}
+	terms, err := scoreTerms(tg.scores, tg.predicted)
+	if err != nil {
+		return err
+	}
+	t.moveLabel(tg.model, tg.bucket, tg.segment, tg.predicted, terms, tg.before.actual, tg.had, after.actual)
+	return nil
+}
+
+// scoreTerms decodes stored scores and returns their terms.
+func scoreTerms(raw []byte, predicted string) (store.ScoreTerms, error) {
+	var scores map[string]float64
+	if err := json.Unmarshal(raw, &scores); err != nil {
+		return store.ScoreTerms{}, fmt.Errorf("decode stored scores: %w", err)
+	}
+	terms, _ := store.NewScoreTerms(scores, predicted)
+	return terms, nil
 }
 
 // earlyKey is one early label version.
@@ -378,7 +405,7 @@ func queueFind(b *pgx.Batch, keys []labelKey, which []int, targets []*target) {
 			i  int64
 			tg target
 		)
-		_, err := pgx.ForEachRow(rows, []any{&i, &tg.pkey, &tg.bucket, &tg.segment, &tg.predicted}, func() error {
+		_, err := pgx.ForEachRow(rows, []any{&i, &tg.pkey, &tg.bucket, &tg.segment, &tg.predicted, &tg.scores}, func() error {
 			j := which[i-1]
 			found := tg
 			found.model = keys[j].model
@@ -519,10 +546,19 @@ func (s *Store) applyTimeout(ctx context.Context, tx pgx.Tx, id int32, due time.
 		bucket             time.Time
 		segment, predicted string
 		count              int64
+		scores             []byte
 	)
-	_, err = pgx.ForEachRow(rows, []any{&bucket, &segment, &predicted, &count}, func() error {
+	_, err = pgx.ForEachRow(rows, []any{&bucket, &segment, &predicted, &count, &scores}, func() error {
 		t.addCell(id, bucket, segment, label, predicted, count)
 		n += count
+		if scores == nil {
+			return nil
+		}
+		terms, err := scoreTerms(scores, predicted)
+		if err != nil {
+			return err
+		}
+		t.moveLabel(id, bucket, segment, predicted, terms, "", false, label)
 		return nil
 	})
 	if err != nil {

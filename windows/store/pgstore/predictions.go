@@ -30,6 +30,8 @@ type predLine struct {
 	bucket time.Time
 	p      *store.Prediction
 	pkey   int64
+	terms  store.ScoreTerms // the score terms, when scored
+	scored bool
 
 	// Set per attempt.
 	stored bool
@@ -121,6 +123,7 @@ func predLines(batch []store.Prediction, ids map[string]int32) ([]predLine, erro
 			return nil, fmt.Errorf("prediction line %d: %w", i+1, err)
 		}
 		lines[i] = predLine{model: ids[p.Model], id: p.ID, at: micro(p.At), bucket: micro(p.Bucket), p: p}
+		lines[i].terms, lines[i].scored = store.NewScoreTerms(p.Scores, p.Predicted)
 	}
 	return lines, nil
 }
@@ -199,6 +202,9 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 		starts, err = pgx.CollectRows(rows, pgx.RowTo[int64])
 		return err
 	})
+	if slices.ContainsFunc(lines, func(l predLine) bool { return l.scored }) {
+		queueClasses(&b, models, t)
+	}
 	b.Queue(sqlSavepoint)
 	if err := tx.SendBatch(ctx, &b).Close(); err != nil {
 		return err
@@ -232,10 +238,7 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 		_, err := tx.Exec(ctx, sqlCommit)
 		return err
 	}
-	for _, l := range fresh {
-		l.stored = true
-		t.addPredicted(l.model, l.bucket, l.p.Segment, l.p.Predicted, l.at)
-	}
+	countFresh(fresh, t)
 	if early {
 		var v versionRows
 		if err := takeEarly(ctx, tx, fresh, &v, t); err != nil {
@@ -252,6 +255,33 @@ func (s *Store) storePredictions(ctx context.Context, tx *pgx.Conn, lines []pred
 	t.queue(&b)
 	b.Queue(sqlCommit)
 	return tx.SendBatch(ctx, &b).Close()
+}
+
+// countFresh marks the new lines stored and counts them.
+func countFresh(fresh []*predLine, t *tally) {
+	for _, l := range fresh {
+		l.stored = true
+		t.addPredicted(l.model, l.bucket, l.p.Segment, l.p.Predicted, l.at)
+		if l.scored {
+			t.addScored(l.model, l.bucket, l.p.Segment, l.p.Predicted, l.terms)
+		}
+	}
+}
+
+// queueClasses queues the read of the models' classes into t, for the
+// bin-0 counts of the call's Changes.
+func queueClasses(b *pgx.Batch, models []int32, t *tally) {
+	b.Queue(sqlModelClasses, models).Query(func(rows pgx.Rows) error {
+		var (
+			id   int32
+			name string
+		)
+		_, err := pgx.ForEachRow(rows, []any{&id, &name}, func() error {
+			t.classes[id] = append(t.classes[id], name)
+			return nil
+		})
+		return err
+	})
 }
 
 // copyPredictions copies lines into predictions. The rows are encoded as
@@ -388,6 +418,9 @@ func takeEarly(ctx context.Context, tx conn, fresh []*predLine, v *versionRows, 
 	}
 	for l, b := range current {
 		t.addCell(l.model, l.bucket, l.p.Segment, b.actual, l.p.Predicted, 1)
+		if l.scored {
+			t.moveLabel(l.model, l.bucket, l.p.Segment, l.p.Predicted, l.terms, "", false, b.actual)
+		}
 	}
 	return nil
 }

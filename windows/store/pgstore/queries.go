@@ -72,11 +72,22 @@ const (
 	sqlStoredContent = `SELECT u.m, u.id, p.at, p.segment, p.predicted, p.scores::text
 FROM unnest($1::int[], $2::text[]) AS u(m, id)
 JOIN predictions p ON p.model_id = u.m AND p.id = u.id`
-	sqlAddPredicted = `INSERT INTO predicted_counts (model_id, bucket, segment, predicted, n, latest_at)
-SELECT * FROM unnest($1::int[], $2::timestamptz[], $3::text[], $4::text[], $5::bigint[], $6::timestamptz[])
+	sqlAddPredicted = `INSERT INTO predicted_counts (model_id, bucket, segment, predicted, n, latest_at, scored)
+SELECT * FROM unnest($1::int[], $2::timestamptz[], $3::text[], $4::text[], $5::bigint[], $6::timestamptz[], $7::bigint[])
 ON CONFLICT (model_id, bucket, segment, predicted) DO UPDATE
-SET n = predicted_counts.n + excluded.n, latest_at = greatest(predicted_counts.latest_at, excluded.latest_at)`
-	sqlHasEarly = `SELECT EXISTS (SELECT 1 FROM early_labels WHERE model_id = ANY($1::int[]))`
+SET n = predicted_counts.n + excluded.n, latest_at = greatest(predicted_counts.latest_at, excluded.latest_at),
+    scored = predicted_counts.scored + excluded.scored`
+	sqlAddScores = `INSERT INTO score_counts (model_id, bucket, segment, class, bin, n)
+SELECT * FROM unnest($1::int[], $2::timestamptz[], $3::text[], $4::text[], $5::smallint[], $6::bigint[])
+ON CONFLICT (model_id, bucket, segment, class, bin) DO UPDATE SET n = score_counts.n + excluded.n`
+	sqlAddScoreLabels = `INSERT INTO score_labels (model_id, bucket, segment, bin, n, score_sum, correct, brier_sum)
+SELECT * FROM unnest($1::int[], $2::timestamptz[], $3::text[], $4::smallint[], $5::bigint[], $6::bigint[], $7::bigint[], $8::bigint[])
+ON CONFLICT (model_id, bucket, segment, bin) DO UPDATE
+SET n = score_labels.n + excluded.n, score_sum = score_labels.score_sum + excluded.score_sum,
+    correct = score_labels.correct + excluded.correct, brier_sum = score_labels.brier_sum + excluded.brier_sum`
+	// sqlModelClasses lists the classes of the given models.
+	sqlModelClasses = `SELECT model_id, name FROM model_classes WHERE model_id = ANY($1::int[]) ORDER BY model_id, position`
+	sqlHasEarly     = `SELECT EXISTS (SELECT 1 FROM early_labels WHERE model_id = ANY($1::int[]))`
 	// sqlTakeEarly removes and returns the early labels of new predictions.
 	sqlTakeEarly = `DELETE FROM early_labels e
 USING unnest($1::int[], $2::text[]) AS u(m, id)
@@ -88,7 +99,7 @@ RETURNING e.model_id, e.id, e.at, e.actual`
 const (
 	// sqlFindPredictions returns the join keys of the known predictions
 	// among the given (model, id) pairs.
-	sqlFindPredictions = `SELECT u.i, p.pkey, p.bucket, p.segment, p.predicted
+	sqlFindPredictions = `SELECT u.i, p.pkey, p.bucket, p.segment, p.predicted, p.scores::text
 FROM unnest($1::int[], $2::text[]) WITH ORDINALITY AS u(m, id, i)
 JOIN predictions p ON p.model_id = u.m AND p.id = u.id`
 	// sqlFindVersions returns every label version of the given predictions
@@ -135,9 +146,9 @@ WHERE pc.n > coalesce(c.n, 0)
 ORDER BY pc.bucket`
 	// sqlApplyTimeout gives the due predictions of buckets $2 (within
 	// [$3, $4]) with no label version an implied one, at at + $6, and
-	// returns how many per cell.
+	// returns how many per cell, and the scores of those with scores.
 	sqlApplyTimeout = `WITH due AS (
-    SELECT p.bucket, p.pkey, p.segment, p.predicted, p.at FROM predictions p
+    SELECT p.bucket, p.pkey, p.segment, p.predicted, p.at, p.scores FROM predictions p
     WHERE p.model_id = $1 AND p.bucket = ANY($2::timestamptz[]) AND p.bucket >= $3 AND p.bucket <= $4
       AND p.at <= $5
       AND NOT EXISTS (
@@ -147,7 +158,9 @@ ORDER BY pc.bucket`
     INSERT INTO label_versions (model_id, bucket, pkey, seq, implied, at, actual)
     SELECT $1, bucket, pkey, 1, true, at + $6::interval, $7::text FROM due
 )
-SELECT bucket, segment, predicted, count(*) FROM due GROUP BY bucket, segment, predicted`
+SELECT bucket, segment, predicted, count(*), NULL FROM due WHERE scores IS NULL GROUP BY bucket, segment, predicted
+UNION ALL
+SELECT bucket, segment, predicted, 1, scores::text FROM due WHERE scores IS NOT NULL`
 	sqlExpireEarly = `DELETE FROM early_labels WHERE model_id = $1 AND received_at <= $2`
 	sqlSummarize   = `SELECT brin_summarize_new_values('predictions_bucket')`
 )
@@ -255,6 +268,52 @@ FROM (
 ) d JOIN models m ON m.model_id = d.model_id
 WHERE d.stored <> d.recounted
 ORDER BY m.name, d.bucket, d.segment, d.predicted`
+)
+
+// Score aggregate reads, with the arguments of the count reads. Verify
+// reads the raw rows and the maintained rows of every kept bucket, and
+// recomputes in Go, with the arithmetic that maintains them.
+const (
+	sqlScored = `SELECT bucket, sum(scored)::bigint FROM predicted_counts
+WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND ($4::text IS NULL OR segment = $4)
+GROUP BY bucket HAVING sum(scored) <> 0`
+	sqlScoreCounts = `SELECT bucket, class, bin, sum(n)::bigint FROM score_counts
+WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND ($4::text IS NULL OR segment = $4)
+GROUP BY bucket, class, bin HAVING sum(n) <> 0`
+	sqlScoreLabels = `SELECT bucket, bin, sum(n)::bigint, sum(score_sum)::bigint, sum(correct)::bigint, sum(brier_sum)::bigint
+FROM score_labels
+WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND ($4::text IS NULL OR segment = $4)
+GROUP BY bucket, bin ORDER BY bucket, bin`
+	// sqlScoresAsOf lists the scored predictions made by $5 with their
+	// label as of $5 (ranked as in sqlCellsAsOf), NULL if none.
+	sqlScoresAsOf = `WITH p AS (
+    SELECT bucket, pkey, predicted, scores FROM predictions
+    WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND ($4::text IS NULL OR segment = $4) AND at <= $5
+      AND scores IS NOT NULL
+), v AS (
+    SELECT DISTINCT ON (bucket, pkey) bucket, pkey, actual FROM label_versions
+    WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND at <= $5
+    ORDER BY bucket, pkey, implied, at DESC, actual DESC
+)
+SELECT p.bucket, p.predicted, p.scores::text, v.actual FROM p LEFT JOIN v ON v.bucket = p.bucket AND v.pkey = p.pkey`
+	sqlVerifyScoresRaw = `WITH cur AS (
+    SELECT DISTINCT ON (model_id, bucket, pkey) model_id, bucket, pkey, actual FROM label_versions
+    ORDER BY model_id, bucket, pkey, implied, at DESC, actual DESC
+)
+SELECT m.name, p.segment, p.bucket, p.predicted, p.scores::text, c.actual
+FROM predictions p JOIN models m ON m.model_id = p.model_id
+LEFT JOIN cur c ON c.model_id = p.model_id AND c.bucket = p.bucket AND c.pkey = p.pkey
+WHERE p.scores IS NOT NULL AND (m.purged_before IS NULL OR p.bucket >= m.purged_before)`
+	sqlVerifyScored = `SELECT m.name, c.segment, c.bucket, sum(c.scored)::bigint
+FROM predicted_counts c JOIN models m ON m.model_id = c.model_id
+WHERE m.purged_before IS NULL OR c.bucket >= m.purged_before
+GROUP BY m.name, c.segment, c.bucket`
+	sqlVerifyScoreCounts = `SELECT m.name, c.segment, c.bucket, c.class, c.bin, c.n
+FROM score_counts c JOIN models m ON m.model_id = c.model_id
+WHERE m.purged_before IS NULL OR c.bucket >= m.purged_before`
+	sqlVerifyScoreLabels = `SELECT m.name, c.segment, c.bucket, c.bin, c.n, c.score_sum, c.correct, c.brier_sum
+FROM score_labels c JOIN models m ON m.model_id = c.model_id
+WHERE m.purged_before IS NULL OR c.bucket >= m.purged_before`
 )
 
 // Alerts.

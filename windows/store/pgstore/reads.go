@@ -138,7 +138,7 @@ func (s *Store) Counts(ctx context.Context, q store.Query) (store.Counts, error)
 	if err != nil {
 		return store.Counts{}, err
 	}
-	return s.readCounts(ctx, sqlCells, sqlPredicted, id, micro(q.From), micro(q.To), q.Segment)
+	return s.readCounts(ctx, sqlCells, sqlPredicted, scoresIn, id, micro(q.From), micro(q.To), q.Segment)
 }
 
 // CountsAsOf recomputes q's figures from raw rows as known at asOf: each
@@ -149,17 +149,22 @@ func (s *Store) CountsAsOf(ctx context.Context, q store.Query, asOf time.Time) (
 	if err != nil {
 		return store.Counts{}, err
 	}
-	return s.readCounts(ctx, sqlCellsAsOf, sqlPredictedAsOf, id, micro(q.From), micro(q.To), q.Segment, micro(asOf))
+	return s.readCounts(ctx, sqlCellsAsOf, sqlPredictedAsOf, scoresAsOf, id, micro(q.From), micro(q.To), q.Segment, micro(asOf))
 }
 
-// readCounts runs a cells query and a predicted-count query in one
-// repeatable-read transaction, so both see the same snapshot.
-func (s *Store) readCounts(ctx context.Context, cellsQuery, predictedQuery string, args ...any) (store.Counts, error) {
+// scoreReader reads the score aggregates of a count read into out.
+type scoreReader func(ctx context.Context, tx querier, out *store.Counts, args ...any) error
+
+// readCounts runs a cells query, a predicted-count query and a score read
+// in one repeatable-read transaction, so all see the same snapshot.
+func (s *Store) readCounts(ctx context.Context, cellsQuery, predictedQuery string, scores scoreReader, args ...any) (store.Counts, error) {
 	var out store.Counts
 	err := pgx.BeginTxFunc(ctx, s.pool, pgx.TxOptions{IsoLevel: pgx.RepeatableRead, AccessMode: pgx.ReadOnly}, func(tx pgx.Tx) error {
 		var err error
-		out, err = countsIn(ctx, tx, cellsQuery, predictedQuery, args...)
-		return err
+		if out, err = countsIn(ctx, tx, cellsQuery, predictedQuery, args...); err != nil {
+			return err
+		}
+		return scores(ctx, tx, &out, args...)
 	})
 	if err != nil {
 		return store.Counts{}, unavailable("read counts", err)
@@ -221,6 +226,11 @@ func (s *Store) Verify(ctx context.Context) ([]store.Difference, error) {
 			out = append(out, d)
 			return nil
 		})
+		if err != nil {
+			return err
+		}
+		scores, err := verifyScores(ctx, tx)
+		out = append(out, scores...)
 		return err
 	})
 	if err != nil {

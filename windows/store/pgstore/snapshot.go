@@ -56,7 +56,11 @@ func (r *snapshotReader) Counts(ctx context.Context, q store.Query) (store.Count
 	if err != nil {
 		return store.Counts{}, err
 	}
-	out, err := countsIn(ctx, r.tx, sqlCells, sqlPredicted, id, micro(q.From), micro(q.To), q.Segment)
+	args := []any{id, micro(q.From), micro(q.To), q.Segment}
+	out, err := countsIn(ctx, r.tx, sqlCells, sqlPredicted, args...)
+	if err == nil {
+		err = scoresIn(ctx, r.tx, &out, args...)
+	}
 	if err != nil {
 		return store.Counts{}, unavailable("read counts", err)
 	}

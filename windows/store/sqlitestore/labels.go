@@ -3,6 +3,7 @@ package sqlitestore
 import (
 	"context"
 	"database/sql"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"time"
@@ -62,6 +63,9 @@ func (s *Store) IngestLabels(ctx context.Context, batch []store.Label, now time.
 			res.Outcomes[i] = store.LabelDuplicate // this early version is already held
 		}
 	}
+	if j.err != nil {
+		return res, unavailable("label batch", j.err)
+	}
 	if err := j.setLabels(ctx); err != nil {
 		return res, err
 	}
@@ -96,7 +100,8 @@ type labelTarget struct {
 	label              sql.NullString
 	labelAt            int64
 	implied            bool
-	changed            bool // the current label was set by this batch
+	changed            bool           // the current label was set by this batch
+	scores             sql.NullString // the stored scores' JSON
 }
 
 // labelJoin is one label batch's transaction and state.
@@ -106,6 +111,7 @@ type labelJoin struct {
 	received int64
 	preds    map[predRef]*labelTarget // the known predictions the batch names
 	args     []any
+	err      error // the first failure of decide
 }
 
 // lookup reads the known predictions among refs, a chunk of ids of one
@@ -149,7 +155,7 @@ func (j *labelJoin) readTargets(ctx context.Context, model int64, query string, 
 			tg            labelTarget
 			labelAt, impl sql.NullInt64
 		)
-		if err := rows.Scan(&id, &tg.bucket, &tg.segment, &tg.predicted, &tg.label, &labelAt, &impl); err != nil {
+		if err := rows.Scan(&id, &tg.bucket, &tg.segment, &tg.predicted, &tg.label, &labelAt, &impl, &tg.scores); err != nil {
 			return unavailable("look up predictions", err)
 		}
 		tg.labelAt, tg.implied = labelAt.Int64, impl.Int64 == 1
@@ -215,6 +221,9 @@ func (j *labelJoin) decide(tg *labelTarget, ref predRef, l store.Label, fresh ma
 	}
 	old := tg.label
 	tg.label, tg.labelAt, tg.implied, tg.changed = sql.NullString{String: l.Actual, Valid: true}, at, false, true
+	if old.String != l.Actual || !old.Valid {
+		j.moveScores(tg, ref.model, old, l.Actual)
+	}
 	switch {
 	case !old.Valid:
 		j.acc.addCell(ref.model, tg.bucket, tg.segment, l.Actual, tg.predicted, 1)
@@ -228,6 +237,22 @@ func (j *labelJoin) decide(tg *labelTarget, ref predRef, l store.Label, fresh ma
 	// Same actual, newer version (or the real version confirming an
 	// implied one): no cell moves.
 	return store.LabelDuplicate
+}
+
+// moveScores counts a scored prediction's calibration and Brier entry
+// moving from label old to actual. Stored scores are the store's own
+// canonical JSON and decode; should one not, j.err keeps the error.
+func (j *labelJoin) moveScores(tg *labelTarget, model int64, old sql.NullString, actual string) {
+	if !tg.scores.Valid {
+		return
+	}
+	var scores map[string]float64
+	if err := json.Unmarshal([]byte(tg.scores.String), &scores); err != nil {
+		j.err = fmt.Errorf("decode stored scores: %w", err)
+		return
+	}
+	terms, _ := store.NewScoreTerms(scores, tg.predicted)
+	j.acc.moveLabel(model, tg.bucket, tg.segment, tg.predicted, terms, old.String, old.Valid, actual)
 }
 
 // setLabels writes the current labels the batch changed.
@@ -291,6 +316,9 @@ func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, time
 	if len(acc.cells) == 0 {
 		return 0, store.Changes{}, nil
 	}
+	if err := dueScores(ctx, tx, acc, id, cutoff, label); err != nil {
+		return 0, store.Changes{}, err
+	}
 	if _, err := tx.ExecContext(ctx, sqlInsertImplied, id, cutoff, shift, label, micros(now)); err != nil {
 		return 0, store.Changes{}, unavailable("insert implied labels", err)
 	}
@@ -320,4 +348,30 @@ func (s *Store) ExpireEarlyLabels(ctx context.Context, model string, ttl time.Du
 		return 0, unavailable("expire early labels", err)
 	}
 	return n, nil
+}
+
+// dueScores counts the calibration and Brier entries of the due scored
+// predictions of model id taking the implied label.
+func dueScores(ctx context.Context, tx *ingestTx, acc *accumulator, id, cutoff int64, label string) error {
+	err := each(ctx, tx, sqlDueScored, []any{id, cutoff}, func(r *sql.Rows) error {
+		var (
+			bucket             int64
+			segment, predicted string
+			raw                string
+		)
+		if err := r.Scan(&bucket, &segment, &predicted, &raw); err != nil {
+			return err
+		}
+		var scores map[string]float64
+		if err := json.Unmarshal([]byte(raw), &scores); err != nil {
+			return fmt.Errorf("decode stored scores: %w", err)
+		}
+		terms, _ := store.NewScoreTerms(scores, predicted)
+		acc.moveLabel(id, bucket, segment, predicted, terms, "", false, label)
+		return nil
+	})
+	if err != nil {
+		return unavailable("read due scores", err)
+	}
+	return nil
 }

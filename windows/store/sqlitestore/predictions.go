@@ -50,9 +50,8 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 		i += size
 	}
 
-	content, hasEarlyStmt := tx.stmt(ctx, sqlPredictionContent), tx.stmt(ctx, sqlHasEarly)
-	var join *earlyJoiner // bound when the first model with early labels shows up
-	hasEarly := map[int64]bool{}
+	content := tx.stmt(ctx, sqlPredictionContent)
+	st := storedLines{tx: tx, acc: acc, hasEarlyStmt: tx.stmt(ctx, sqlHasEarly), hasEarly: map[int64]bool{}}
 	for i, p := range batch {
 		l := &lines[i]
 		scores := l.scoreValue(allScores)
@@ -69,29 +68,8 @@ func (s *Store) IngestPredictions(ctx context.Context, batch []store.Prediction,
 			continue
 		}
 		res.Outcomes[i] = store.PredictionStored
-		acc.addPredicted(l.model, l.bucket, p.Segment, p.Predicted, 1)
-		acc.stored(l.model, l.at)
-
-		early, checked := hasEarly[l.model]
-		if !checked {
-			if err := hasEarlyStmt.QueryRowContext(ctx, l.model).Scan(&early); err != nil {
-				return res, unavailable("look for early labels", err)
-			}
-			hasEarly[l.model] = early
-		}
-		if !early {
-			continue
-		}
-		if join == nil {
-			join = newEarlyJoiner(ctx, tx)
-		}
-		actual, joined, err := join.join(ctx, l.model, p.ID)
-		if err != nil {
+		if err := st.add(ctx, l, p); err != nil {
 			return res, err
-		}
-		if joined {
-			acc.addCell(l.model, l.bucket, p.Segment, actual, p.Predicted, 1)
-			acc.labeled(l.model, 1)
 		}
 	}
 	if err := acc.flush(ctx, tx); err != nil {
@@ -121,6 +99,57 @@ func (s *Store) predictionLines(ctx context.Context, tx *ingestTx, acc *accumula
 		lines[i] = predictionLine{model: id, at: micros(p.At), bucket: micros(p.Bucket), scores: [2]int{start, len(buf)}}
 	}
 	return lines, string(buf), nil
+}
+
+// storedLines counts the lines a prediction batch stored and joins their
+// early labels.
+type storedLines struct {
+	tx           *ingestTx
+	acc          *accumulator
+	hasEarlyStmt *sql.Stmt
+	hasEarly     map[int64]bool
+	join         *earlyJoiner // bound when the first model with early labels shows up
+}
+
+// add counts the stored line l and joins its early labels, if any.
+func (st *storedLines) add(ctx context.Context, l *predictionLine, p store.Prediction) error {
+	acc := st.acc
+	acc.addPredicted(l.model, l.bucket, p.Segment, p.Predicted, 1)
+	acc.stored(l.model, l.at)
+	terms, scored := store.NewScoreTerms(p.Scores, p.Predicted)
+	if scored {
+		classes, ok := acc.classes[l.model]
+		if !ok {
+			var err error
+			if classes, err = classesOf(ctx, st.tx, l.model); err != nil {
+				return err
+			}
+		}
+		acc.addScored(l.model, l.bucket, p.Segment, p.Predicted, terms, classes)
+	}
+	early, checked := st.hasEarly[l.model]
+	if !checked {
+		if err := st.hasEarlyStmt.QueryRowContext(ctx, l.model).Scan(&early); err != nil {
+			return unavailable("look for early labels", err)
+		}
+		st.hasEarly[l.model] = early
+	}
+	if !early {
+		return nil
+	}
+	if st.join == nil {
+		st.join = newEarlyJoiner(ctx, st.tx)
+	}
+	actual, joined, err := st.join.join(ctx, l.model, p.ID)
+	if err != nil || !joined {
+		return err
+	}
+	acc.addCell(l.model, l.bucket, p.Segment, actual, p.Predicted, 1)
+	acc.labeled(l.model, 1)
+	if scored {
+		acc.moveLabel(l.model, l.bucket, p.Segment, p.Predicted, terms, "", false, actual)
+	}
+	return nil
 }
 
 // predictionLine is what IngestPredictions derives from one line: the model

@@ -50,9 +50,16 @@ ON CONFLICT (model_id, id) DO NOTHING`
 	sqlHasEarly          = `SELECT EXISTS (SELECT 1 FROM early_labels WHERE model_id = ?)`
 	sqlEarlyFor          = `SELECT at, actual, received_at FROM early_labels WHERE model_id = ? AND id = ?`
 	sqlDeleteEarlyFor    = `DELETE FROM early_labels WHERE model_id = ? AND id = ?`
-	sqlAddPredicted      = `INSERT INTO predicted_counts (model_id, bucket, segment, predicted, n)
-VALUES (?, ?, ?, ?, ?)
-ON CONFLICT (model_id, bucket, segment, predicted) DO UPDATE SET n = n + excluded.n`
+	sqlAddPredicted      = `INSERT INTO predicted_counts (model_id, bucket, segment, predicted, n, scored)
+VALUES (?, ?, ?, ?, ?, ?)
+ON CONFLICT (model_id, bucket, segment, predicted) DO UPDATE SET n = n + excluded.n, scored = scored + excluded.scored`
+	sqlAddScore = `INSERT INTO score_counts (model_id, bucket, segment, class, bin, n)
+VALUES (?, ?, ?, ?, ?, ?)
+ON CONFLICT (model_id, bucket, segment, class, bin) DO UPDATE SET n = n + excluded.n`
+	sqlAddScoreLabel = `INSERT INTO score_labels (model_id, bucket, segment, bin, n, score_sum, correct, brier_sum)
+VALUES (?, ?, ?, ?, ?, ?, ?, ?)
+ON CONFLICT (model_id, bucket, segment, bin) DO UPDATE SET n = n + excluded.n, score_sum = score_sum + excluded.score_sum,
+    correct = correct + excluded.correct, brier_sum = brier_sum + excluded.brier_sum`
 )
 
 // insertChunks returns the row counts of the multi-row prediction inserts,
@@ -90,7 +97,7 @@ func insertPredictionsSQL(rows int) string {
 // predictions of model ?1, whose ids are ?2 on.
 func lookupLabelsSQL(rows int) string {
 	var b strings.Builder
-	b.WriteString("SELECT id, bucket, segment, predicted, label, label_at, label_implied FROM predictions\nWHERE model_id = ?1 AND id IN (")
+	b.WriteString("SELECT id, bucket, segment, predicted, label, label_at, label_implied, scores FROM predictions\nWHERE model_id = ?1 AND id IN (")
 	for i := range rows {
 		if i > 0 {
 			b.WriteString(", ")
@@ -154,6 +161,8 @@ const (
 	sqlDueGroups = `SELECT bucket, segment, predicted, COUNT(*) FROM predictions
 WHERE model_id = ?1 AND label IS NULL AND at <= ?2
 GROUP BY bucket, segment, predicted`
+	sqlDueScored = `SELECT bucket, segment, predicted, scores FROM predictions
+WHERE model_id = ?1 AND label IS NULL AND at <= ?2 AND scores IS NOT NULL`
 	sqlInsertImplied = `INSERT INTO label_versions (model_id, id, implied, at, actual, received_at)
 SELECT model_id, id, 1, at + ?3, ?4, ?5 FROM predictions
 WHERE model_id = ?1 AND label IS NULL AND at <= ?2`
@@ -250,6 +259,53 @@ FROM (
 ) d JOIN models m ON m.id = d.model_id
 WHERE d.stored <> d.recounted
 ORDER BY m.name, d.bucket, d.segment, d.predicted`
+)
+
+// Score aggregate reads, with the arguments of the count reads. Verify
+// reads the raw rows and the maintained rows of every kept bucket, and
+// recomputes in Go, with the arithmetic that maintains them.
+const (
+	sqlScored = `SELECT bucket, SUM(scored) FROM predicted_counts
+WHERE model_id = ?1 AND bucket >= ?2 AND bucket < ?3 AND (?4 IS NULL OR segment = ?4)
+GROUP BY bucket HAVING SUM(scored) <> 0`
+	sqlScoreCounts = `SELECT bucket, class, bin, SUM(n) FROM score_counts
+WHERE model_id = ?1 AND bucket >= ?2 AND bucket < ?3 AND (?4 IS NULL OR segment = ?4)
+GROUP BY bucket, class, bin HAVING SUM(n) <> 0`
+	sqlScoreLabels = `SELECT bucket, bin, SUM(n), SUM(score_sum), SUM(correct), SUM(brier_sum) FROM score_labels
+WHERE model_id = ?1 AND bucket >= ?2 AND bucket < ?3 AND (?4 IS NULL OR segment = ?4)
+GROUP BY bucket, bin ORDER BY bucket, bin`
+	// sqlScoresAsOf lists the scored predictions made by ?5 with their
+	// label as of ?5 (ranked as in sqlCellsAsOf), NULL if none.
+	sqlScoresAsOf = `WITH p AS (
+    SELECT id, bucket, predicted, scores FROM predictions
+    WHERE model_id = ?1 AND bucket >= ?2 AND bucket < ?3 AND (?4 IS NULL OR segment = ?4) AND at <= ?5
+      AND scores IS NOT NULL
+), v AS (
+    SELECT v.id, v.actual,
+           ROW_NUMBER() OVER (PARTITION BY v.id ORDER BY v.implied, v.at DESC, v.actual DESC) AS rank
+    FROM label_versions v JOIN p ON p.id = v.id
+    WHERE v.model_id = ?1 AND v.at <= ?5
+)
+SELECT p.bucket, p.predicted, p.scores, v.actual FROM p LEFT JOIN v ON v.id = p.id AND v.rank = 1`
+	sqlVerifyScoresRaw = `WITH cur AS (
+    SELECT model_id, id, actual,
+           ROW_NUMBER() OVER (PARTITION BY model_id, id ORDER BY implied, at DESC, actual DESC) AS rank
+    FROM label_versions
+)
+SELECT m.name, p.segment, p.bucket, p.predicted, p.scores, c.actual
+FROM predictions p JOIN models m ON m.id = p.model_id
+LEFT JOIN cur c ON c.model_id = p.model_id AND c.id = p.id AND c.rank = 1
+WHERE p.scores IS NOT NULL AND (m.purged_before IS NULL OR p.bucket >= m.purged_before)`
+	sqlVerifyScored = `SELECT m.name, c.segment, c.bucket, SUM(c.scored)
+FROM predicted_counts c JOIN models m ON m.id = c.model_id
+WHERE m.purged_before IS NULL OR c.bucket >= m.purged_before
+GROUP BY m.name, c.segment, c.bucket`
+	sqlVerifyScoreCounts = `SELECT m.name, c.segment, c.bucket, c.class, c.bin, c.n
+FROM score_counts c JOIN models m ON m.id = c.model_id
+WHERE m.purged_before IS NULL OR c.bucket >= m.purged_before`
+	sqlVerifyScoreLabels = `SELECT m.name, c.segment, c.bucket, c.bin, c.n, c.score_sum, c.correct, c.brier_sum
+FROM score_labels c JOIN models m ON m.id = c.model_id
+WHERE m.purged_before IS NULL OR c.bucket >= m.purged_before`
 )
 
 // Alerts.

@@ -174,7 +174,7 @@ func (s *Store) Counts(ctx context.Context, q store.Query) (store.Counts, error)
 		return store.Counts{}, err
 	}
 	args := []any{id, micros(q.From), micros(q.To), segmentArg(q.Segment)}
-	return s.readCounts(ctx, sqlCells, sqlPredicted, args)
+	return s.readCounts(ctx, sqlCells, sqlPredicted, scoresIn, args)
 }
 
 // CountsAsOf recomputes q's figures from raw rows as known at asOf: each
@@ -186,18 +186,25 @@ func (s *Store) CountsAsOf(ctx context.Context, q store.Query, asOf time.Time) (
 		return store.Counts{}, err
 	}
 	args := []any{id, micros(q.From), micros(q.To), segmentArg(q.Segment), micros(asOf)}
-	return s.readCounts(ctx, sqlCellsAsOf, sqlPredictedAsOf, args)
+	return s.readCounts(ctx, sqlCellsAsOf, sqlPredictedAsOf, scoresAsOf, args)
 }
 
-// readCounts runs a cells query and a predicted-count query in one read
-// transaction, so both see the same snapshot.
-func (s *Store) readCounts(ctx context.Context, cellsQuery, predictedQuery string, args []any) (store.Counts, error) {
+// scoreReader reads the score aggregates of a count read into out.
+type scoreReader func(ctx context.Context, q queryer, out *store.Counts, args []any) error
+
+// readCounts runs a cells query, a predicted-count query and a score read
+// in one read transaction, so all see the same snapshot.
+func (s *Store) readCounts(ctx context.Context, cellsQuery, predictedQuery string, scores scoreReader, args []any) (store.Counts, error) {
 	tx, err := s.read.BeginTx(ctx, &sql.TxOptions{ReadOnly: true})
 	if err != nil {
 		return store.Counts{}, unavailable("begin read", err)
 	}
 	defer tx.Rollback()
-	return countsIn(ctx, tx, cellsQuery, predictedQuery, args)
+	out, err := countsIn(ctx, tx, cellsQuery, predictedQuery, args)
+	if err != nil {
+		return store.Counts{}, err
+	}
+	return out, scores(ctx, tx, &out, args)
 }
 
 // countsIn runs a cells query and a predicted-count query on q, which must
@@ -280,5 +287,6 @@ func (s *Store) Verify(ctx context.Context) ([]store.Difference, error) {
 	if err != nil {
 		return nil, unavailable("verify predicted counts", err)
 	}
-	return out, nil
+	scores, err := verifyScores(ctx, tx)
+	return append(out, scores...), err
 }

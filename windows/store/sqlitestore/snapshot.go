@@ -51,5 +51,10 @@ func (r *snapshotReader) Counts(ctx context.Context, q store.Query) (store.Count
 	if err != nil {
 		return store.Counts{}, err
 	}
-	return countsIn(ctx, r.tx, sqlCells, sqlPredicted, []any{id, micros(q.From), micros(q.To), segmentArg(q.Segment)})
+	args := []any{id, micros(q.From), micros(q.To), segmentArg(q.Segment)}
+	out, err := countsIn(ctx, r.tx, sqlCells, sqlPredicted, args)
+	if err != nil {
+		return store.Counts{}, err
+	}
+	return out, scoresIn(ctx, r.tx, &out, args)
 }

@@ -171,7 +171,7 @@ func ingestQueries() []string {
 	qs := []string{
 		sqlInsertPrediction, sqlPredictionContent, sqlHasEarly, sqlEarlyFor, sqlDeleteEarlyFor,
 		sqlPredictionLabel, sqlInsertEarly, sqlInsertVersion, sqlSetLabel,
-		sqlAddCell, sqlAddPredicted, sqlModelTotals,
+		sqlAddCell, sqlAddPredicted, sqlModelTotals, sqlAddScore, sqlAddScoreLabel,
 	}
 	for _, rows := range insertChunks() {
 		qs = append(qs, insertPredictionsSQL(rows))

@@ -234,3 +234,33 @@ func wantTotals(t *testing.T, s store.Store, model string, preds, labeled int64,
 			model, m.Predictions, m.Labeled, m.LatestAt.Format(time.RFC3339), preds, labeled, latest.Format(time.RFC3339))
 	}
 }
+
+// wantRefCounts checks got against the reference's counts want, score
+// aggregates included.
+func wantRefCounts(t *testing.T, what string, got, want store.Counts) {
+	t.Helper()
+	wantCounts(t, what, got, want)
+	wantScores(t, what, got, want)
+}
+
+// wantScores checks the score aggregates of got against want: counts
+// exactly, and sums exactly too, since both sides convert the same whole
+// number of 1e-9 units.
+func wantScores(t *testing.T, what string, got, want store.Counts) {
+	t.Helper()
+	if !slices.EqualFunc(got.Scores, want.Scores, func(x, y store.ScoreCount) bool {
+		return x.Bucket.Equal(y.Bucket) && x.Class == y.Class && x.Bin == y.Bin && x.N == y.N
+	}) {
+		t.Errorf("%s: score counts\n got %v\nwant %v", what, got.Scores, want.Scores)
+	}
+	if !slices.EqualFunc(got.Calibration, want.Calibration, func(x, y store.CalibrationCount) bool {
+		return x.Bucket.Equal(y.Bucket) && x.Bin == y.Bin && x.N == y.N && x.ScoreSum == y.ScoreSum && x.Correct == y.Correct
+	}) {
+		t.Errorf("%s: calibration\n got %v\nwant %v", what, got.Calibration, want.Calibration)
+	}
+	if !slices.EqualFunc(got.Brier, want.Brier, func(x, y store.BrierSum) bool {
+		return x.Bucket.Equal(y.Bucket) && x.N == y.N && x.Sum == y.Sum
+	}) {
+		t.Errorf("%s: Brier\n got %v\nwant %v", what, got.Brier, want.Brier)
+	}
+}

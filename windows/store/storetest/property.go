@@ -143,15 +143,15 @@ func compareWithReference(t *testing.T, s store.Store, ref *reference) {
 	web := "web"
 	for _, model := range []string{fraudModel, ticketModel} {
 		q := all(model)
-		wantCounts(t, model+" Counts", counts(t, s, q), ref.counts(q, nil))
-		wantCounts(t, model+" CountsAsOf far future equals Counts", countsAsOf(t, s, q, farFuture()), counts(t, s, q))
+		wantRefCounts(t, model+" Counts", counts(t, s, q), ref.counts(q, nil))
+		wantRefCounts(t, model+" CountsAsOf far future equals Counts", countsAsOf(t, s, q, farFuture()), counts(t, s, q))
 		for _, T := range asOfTimes() {
-			wantCounts(t, model+" CountsAsOf "+T.Format(time.RFC3339), countsAsOf(t, s, q, T), ref.counts(q, &T))
+			wantRefCounts(t, model+" CountsAsOf "+T.Format(time.RFC3339), countsAsOf(t, s, q, T), ref.counts(q, &T))
 		}
 		q.Segment = &web
-		wantCounts(t, model+" Counts of segment web", counts(t, s, q), ref.counts(q, nil))
+		wantRefCounts(t, model+" Counts of segment web", counts(t, s, q), ref.counts(q, nil))
 		T := at(3 * time.Hour)
-		wantCounts(t, model+" CountsAsOf 3h of segment web", countsAsOf(t, s, q, T), ref.counts(q, &T))
+		wantRefCounts(t, model+" CountsAsOf 3h of segment web", countsAsOf(t, s, q, T), ref.counts(q, &T))
 		preds, labeled, latest := ref.totals(model)
 		wantTotals(t, s, model, preds, labeled, latest)
 	}
@@ -384,7 +384,7 @@ func testConcurrentIngest(t *testing.T, s store.Store) {
 	reader.Wait()
 	for _, model := range []string{fraudModel, ticketModel} {
 		q := all(model)
-		wantCounts(t, model+" Counts", counts(t, s, q), ref.counts(q, nil))
+		wantRefCounts(t, model+" Counts", counts(t, s, q), ref.counts(q, nil))
 		preds, labeled, latest := ref.totals(model)
 		wantTotals(t, s, model, preds, labeled, latest)
 	}
@@ -455,7 +455,7 @@ func testConcurrentJoin(t *testing.T, s store.Store) {
 		ref.predictions([]store.Prediction{p(i)})
 		ref.labels([]store.Label{l(i)}, now)
 	}
-	wantCounts(t, "Counts", counts(t, s, all(fraudModel)), ref.counts(all(fraudModel), nil))
+	wantRefCounts(t, "Counts", counts(t, s, all(fraudModel)), ref.counts(all(fraudModel), nil))
 	wantTotals(t, s, fraudModel, n, n, at((n-1)*time.Second))
 	wantVerifyClean(t, s)
 	t.Logf("%d of %d labels found their prediction; the others waited and joined on its arrival", joined, n)

@@ -183,6 +183,7 @@ func (r *reference) counts(q store.Query, asOf *time.Time) store.Counts {
 		predicted string
 	}
 	cells, pred := map[ck]int64{}, map[pk]int64{}
+	scores := store.NewScoreRecount()
 	for k, rp := range r.preds {
 		p := rp.p
 		if k.model != q.Model || p.Bucket.Before(q.From) || !p.Bucket.Before(q.To) {
@@ -205,8 +206,10 @@ func (r *reference) counts(q store.Query, asOf *time.Time) store.Counts {
 		if ok {
 			cells[ck{p.Bucket.UnixMicro(), v.actual, p.Predicted}]++
 		}
+		scores.Add("", p.Bucket, p.Predicted, p.Scores, v.actual, ok)
 	}
 	var out store.Counts
+	out.Scores, out.Calibration, out.Brier = scores.Counts("", classesOf(q.Model))
 	for k, n := range cells {
 		out.Cells = append(out.Cells, store.Cell{Bucket: time.UnixMicro(k.bucket).UTC(), Actual: k.actual, Predicted: k.predicted, N: n})
 	}

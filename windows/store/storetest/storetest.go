@@ -54,6 +54,7 @@ func Exercise(t *testing.T, newStore func(t *testing.T) store.Store) {
 	t.Run("ConcurrentIngest", func(t *testing.T) { testConcurrentIngest(t, newStore(t)) })
 	t.Run("ConcurrentJoin", func(t *testing.T) { testConcurrentJoin(t, newStore(t)) })
 	t.Run("ConcurrentLabels", func(t *testing.T) { testConcurrentLabels(t, newStore(t)) })
+	t.Run("Scores", func(t *testing.T) { testScores(t, newStore(t)) })
 	t.Run("OrderIndependence", func(t *testing.T) { testOrderIndependence(t, newStore) })
 	t.Run("ReferenceHistory", func(t *testing.T) { testReferenceHistory(t, newStore) })
 	t.Run("Events", func(t *testing.T) { testEvents(t, newStore) })
