@@ -53,7 +53,9 @@
 // number: when two batches add a version to the same prediction at once,
 // the second insert waits for the first batch, fails with a unique
 // violation once it commits, and the second batch is retried from the
-// start, now reading the first one's version. No row is locked or updated
+// start, now reading the first one's version; the retry takes the model's
+// label lock exclusively, so a batch that lost a race once cannot lose
+// again, however hot the predictions it labels. No row is locked or updated
 // per label. Batches copy their versions and upsert their count rows in
 // key order, so two batches that touch the same rows queue instead of
 // deadlocking.

@@ -60,10 +60,19 @@ func benchPrediction(i int) store.Prediction {
 }
 
 func ingestAll(b *testing.B, s *Store, n int) {
+	ingestSome(b, s, n, true)
+}
+
+// ingestSome stores predictions 0..n-1, with or without their scores.
+func ingestSome(b *testing.B, s *Store, n int, scores bool) {
 	ctx := context.Background()
 	batch := make([]store.Prediction, 0, benchBatch)
 	for i := range n {
-		batch = append(batch, benchPrediction(i))
+		p := benchPrediction(i)
+		if !scores {
+			p.Scores = nil
+		}
+		batch = append(batch, p)
 		if len(batch) == benchBatch || i == n-1 {
 			if _, err := s.IngestPredictions(ctx, batch, batch[len(batch)-1].At); err != nil {
 				b.Fatal(err)
@@ -88,25 +97,10 @@ func BenchmarkIngestPredictions(b *testing.B) {
 // to b.N predictions stored beforehand (untimed).
 func BenchmarkIngestLabels(b *testing.B) {
 	benchSyncModes(b, func(b *testing.B, s *Store) {
-		ctx := context.Background()
 		ingestAll(b, s, b.N)
-		batch := make([]store.Label, 0, benchBatch)
-		t0 := time.Date(2026, 3, 3, 0, 0, 0, 0, time.UTC)
 		b.ResetTimer()
 		cpu := processCPU()
-		for i := range b.N {
-			actual := "legit"
-			if i%40 == 0 {
-				actual = "fraud"
-			}
-			batch = append(batch, store.Label{Model: "card-fraud", ID: "txn-" + strconv.Itoa(i), Actual: actual, At: t0.Add(time.Duration(i) * time.Millisecond)})
-			if len(batch) == benchBatch || i == b.N-1 {
-				if _, err := s.IngestLabels(ctx, batch, t0); err != nil {
-					b.Fatal(err)
-				}
-				batch = batch[:0]
-			}
-		}
+		labelAll(b, s, b.N)
 		reportRates(b, cpu)
 	})
 }
@@ -126,4 +120,65 @@ func processCPU() time.Duration {
 func reportRates(b *testing.B, cpu time.Duration) {
 	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "rows/s")
 	b.ReportMetric(float64(processCPU()-cpu)/float64(time.Microsecond)/float64(b.N), "cpu-µs/row")
+}
+
+// BenchmarkIngestScores measures what the score aggregates cost: the same
+// predictions, then first labels for them, stored without and with their
+// scores (sync=FULL), each in a fresh store. Read cpu-µs/row of scores=on
+// against scores=off of the same run.
+func BenchmarkIngestScores(b *testing.B) {
+	for _, scores := range []bool{false, true} {
+		name := map[bool]string{false: "scores=off", true: "scores=on"}[scores]
+		open := func(b *testing.B) *Store {
+			ctx := context.Background()
+			s, err := Open(ctx, filepath.Join(b.TempDir(), "bench.db"), Options{})
+			if err != nil {
+				b.Fatal(err)
+			}
+			b.Cleanup(func() { s.Close() })
+			if err := s.Migrate(ctx); err != nil {
+				b.Fatal(err)
+			}
+			if _, err := s.EnsureModel(ctx, "card-fraud", []string{"legit", "fraud"}, 0); err != nil {
+				b.Fatal(err)
+			}
+			return s
+		}
+		b.Run(name+"/predictions", func(b *testing.B) {
+			s := open(b)
+			b.ResetTimer()
+			cpu := processCPU()
+			ingestSome(b, s, b.N, scores)
+			reportRates(b, cpu)
+		})
+		b.Run(name+"/labels", func(b *testing.B) {
+			s := open(b)
+			ingestSome(b, s, b.N, scores)
+			b.ResetTimer()
+			cpu := processCPU()
+			labelAll(b, s, b.N)
+			reportRates(b, cpu)
+		})
+	}
+}
+
+// labelAll joins first labels to predictions 0..n-1, in batches of
+// benchBatch.
+func labelAll(b *testing.B, s *Store, n int) {
+	ctx := context.Background()
+	batch := make([]store.Label, 0, benchBatch)
+	t0 := time.Date(2026, 3, 3, 0, 0, 0, 0, time.UTC)
+	for i := range n {
+		actual := "legit"
+		if i%40 == 0 {
+			actual = "fraud"
+		}
+		batch = append(batch, store.Label{Model: "card-fraud", ID: "txn-" + strconv.Itoa(i), Actual: actual, At: t0.Add(time.Duration(i) * time.Millisecond)})
+		if len(batch) == benchBatch || i == n-1 {
+			if _, err := s.IngestLabels(ctx, batch, t0); err != nil {
+				b.Fatal(err)
+			}
+			batch = batch[:0]
+		}
+	}
 }
