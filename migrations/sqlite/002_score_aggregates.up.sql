@@ -11,7 +11,9 @@
 --     labeled scored predictions: how many, the sum of that score, how many
 --     are labeled with the predicted class, and their Brier sum. They move
 --     with the current label, in the label's transaction.
--- Predictions stored before this version count in none of them.
+-- Predictions stored before this version count in none of them, so
+-- Verify reports score differences in the buckets that still hold such
+-- predictions, until retention purges them.
 ALTER TABLE predicted_counts ADD COLUMN scored INTEGER NOT NULL DEFAULT 0;
 
 CREATE TABLE score_counts (

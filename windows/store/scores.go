@@ -76,7 +76,7 @@ func (t ScoreTerms) Brier(actual string) int64 {
 		if k == actual {
 			d--
 		}
-		sum += d * d
+		sum += float64(d * d) // the conversion rounds the product: no fused multiply-add on any platform
 	}
 	if _, ok := t.scores[actual]; !ok {
 		sum++
