@@ -20,20 +20,23 @@ const CardLabelTimeout = "7d"
 // listen, an event-time clock (the watermark follows the simulated
 // prediction times), 5m buckets, windows short enough to fill within
 // minutes at DefaultSpeed plus a one-day window lagged until card-screen's
-// labels have matured, and the scenario's two models.
+// labels have matured, which is card-screen's reference_window for the
+// early-warning figures (README.md "Early warning").
 //
 // Its alerts section (the alerts package's rule syntax) holds the rules the
-// scenario triggers: card-screen's fraud recall dropping against the
-// baseline period before the drift (a per-window drop test, and a cusum
-// on the matured buckets), and the ticket queue mix and output mix
-// shifting during the app outage. Rules run on wall-clock schedules, and at
-// DefaultSpeed 5s of wall time are 10 simulated hours: the shift rules run
-// that often so that the day-long outage (12s of wall time) is seen.
+// scenario triggers: on card-screen, the early warning that needs no label
+// (EarlyRule: the fraud prevalence estimated from the predicted mix against
+// the matured reference day) and the label-based ones (RecallRule, a drop
+// of fraud recall against the baseline days before the drift, and a cusum
+// on the matured buckets); on ticket-router, the queue mix and output mix
+// shifting during the app outage. Rules run on wall-clock schedules, every
+// ten simulated hours at opts.Speed (every 5s at DefaultSpeed) but at
+// least a second apart, so that the day-long outage is seen.
 func Config(listen, dataDir string, opts Options) (string, error) {
 	if opts.Start.IsZero() {
 		return "", errors.New("demo config needs the simulation's start time")
 	}
-	// The baseline is the model's first days, before the new fraud pattern;
+	// The baseline is the model's days before the new fraud pattern;
 	// whole hours, so it is aligned to the buckets. Without a drift it is
 	// still the first DefaultDriftAfter.
 	drift := opts.DriftAfter
@@ -42,6 +45,7 @@ func Config(listen, dataDir string, opts Options) (string, error) {
 	}
 	from := opts.Start.UTC().Truncate(time.Hour)
 	to := opts.Start.UTC().Add(drift).Truncate(time.Hour)
+	every := fmt.Sprintf("@every %s", Schedule(opts.Speed))
 
 	var b strings.Builder
 	b.WriteString("# classwatch demo: Plumtwig Mutual, a fictional bank, with simulated traffic.\n")
@@ -57,14 +61,28 @@ windows:
   - {name: 1d, length: 24h}
   - {name: 3d, length: 72h}
   # Fraud labels are complete only once card-screen's label_timeout has passed.
-  - {name: 1d-matured, length: 24h, lag: ` + CardLabelTimeout + `}
+  - {name: ` + MaturedWindow + `, length: 24h, lag: ` + CardLabelTimeout + `}
 models:
 `)
 	fmt.Fprintf(&b, "  - name: %s\n    classes: [%s]\n", TicketRouter, strings.Join(ticketClasses(), ", "))
-	fmt.Fprintf(&b, "  - name: %s\n    classes: [%s]\n    label_timeout: %s\n    default_label: %s\n",
-		CardScreen, strings.Join(cardClasses(), ", "), CardLabelTimeout, Legit)
+	fmt.Fprintf(&b, "  - name: %s\n    classes: [%s]\n    label_timeout: %s\n    default_label: %s\n    reference_window: %s\n",
+		CardScreen, strings.Join(cardClasses(), ", "), CardLabelTimeout, Legit, MaturedWindow)
 	fmt.Fprintf(&b, `alerts:
-  - name: card-fraud-recall-drop
+  # Early warning: no label needed, only the predicted mix of the last day
+  # against the matured reference day's confusion matrix.
+  - name: %s
+    kind: estimated_prevalence_shift
+    model: %s
+    window: 1d
+    classes: [%s]
+    margin: 0.005
+    reference: {window: %s}
+    schedule: %q
+    fire_after: 2
+    severity: warning
+    annotations:
+      description: The predicted mix implies more fraud than in the matured reference day; chargebacks will confirm it days later.
+  - name: %s
     kind: drop
     model: %s
     window: 3d
@@ -72,7 +90,7 @@ models:
     classes: [%s]
     margin: 0.05
     reference: {from: %q, to: %q}
-    schedule: "@every 10s"
+    schedule: %q
     fire_after: 2
     severity: critical
     annotations:
@@ -86,7 +104,7 @@ models:
     reference: {from: %q, to: %q}
     shift: 0.2
     false_alarm_every: 90d
-    schedule: "@every 10s"
+    schedule: %q
     severity: critical
   - name: ticket-queue-mix-shift
     kind: prevalence_shift
@@ -94,16 +112,39 @@ models:
     window: 6h
     reference: {window: 3d}
     psi_threshold: 0.2
-    schedule: "@every 5s"
+    schedule: %q
   - name: ticket-routing-mix-shift
     kind: output_shift
     model: %s
     window: 6h
     reference: {window: 3d}
     psi_threshold: 0.2
-    schedule: "@every 5s"
-`, CardScreen, Fraud, stamp(from), stamp(to), CardScreen, Fraud, stamp(from), stamp(to), TicketRouter, TicketRouter)
+    schedule: %q
+`, EarlyRule, CardScreen, Fraud, MaturedWindow, every,
+		RecallRule, CardScreen, Fraud, stamp(from), stamp(to), every,
+		CardScreen, Fraud, stamp(from), stamp(to), every,
+		TicketRouter, every, TicketRouter, every)
 	return b.String(), nil
+}
+
+// Names in the demo config that the demo's story refers to.
+const (
+	// EarlyRule is card-screen's label-free early warning.
+	EarlyRule = "card-fraud-estimated-rise"
+	// RecallRule is card-screen's fraud recall drop, which needs labels.
+	RecallRule = "card-fraud-recall-drop"
+	// MaturedWindow is the lagged day that is card-screen's reference.
+	MaturedWindow = "1d-matured"
+)
+
+// Schedule returns the wall-clock period of the demo's rules at speed
+// (0 means DefaultSpeed): ten simulated hours, whole seconds, at least one.
+func Schedule(speed float64) time.Duration {
+	if speed <= 0 {
+		speed = DefaultSpeed
+	}
+	d := time.Duration(10 * float64(time.Hour) / speed).Round(time.Second)
+	return max(d, time.Second)
 }
 
 // quote renders s as a YAML double-quoted scalar: every escape Go's

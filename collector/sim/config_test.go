@@ -4,6 +4,7 @@ import (
 	"slices"
 	"strings"
 	"testing"
+	"time"
 
 	"gopkg.in/yaml.v3"
 
@@ -37,6 +38,8 @@ type modelConfig struct {
 	Classes      []string `yaml:"classes"`
 	LabelTimeout string   `yaml:"label_timeout"`
 	DefaultLabel string   `yaml:"default_label"`
+	// ReferenceWindow is README.md "Configuration"'s per-model key.
+	ReferenceWindow string `yaml:"reference_window"`
 }
 
 func TestConfig(t *testing.T) {
@@ -135,6 +138,24 @@ func TestConfig(t *testing.T) {
 	// Its baseline ends before the drift, which starts DefaultDriftAfter in.
 	if from, to := drop.Reference.From, drop.Reference.To; !from.Equal(testStart) || to.After(testStart.Add(DefaultDriftAfter)) || !to.After(from) {
 		t.Errorf("drop rule baseline [%v, %v), want from %v to no later than the drift at %v", from, to, testStart, testStart.Add(DefaultDriftAfter))
+	}
+	// The early rule needs no label: it compares the predicted mix with
+	// the matured reference day, card-screen's reference_window, which lies
+	// wholly before the drift once the drift comes (README.md "Early warning").
+	early, ok := kinds[alerts.KindEstimatedPrevalenceShift]
+	if !ok || early.Name != EarlyRule || early.Model != CardScreen || !slices.Equal(early.Classes, []string{Fraud}) || early.Reference.Window != MaturedWindow {
+		t.Errorf("no estimated prevalence rule on card-screen fraud against %s: %+v", MaturedWindow, early)
+	}
+	if card.ReferenceWindow != MaturedWindow {
+		t.Errorf("card-screen reference_window = %q, want %s", card.ReferenceWindow, MaturedWindow)
+	}
+	if drop.Name != RecallRule {
+		t.Errorf("recall drop rule is named %q, want %s", drop.Name, RecallRule)
+	}
+	// The matured day (a day, lagged by the label timeout) must be whole
+	// before the drift, or the reference would hold drifted traffic.
+	if DefaultDriftAfter < 24*time.Hour+timeout {
+		t.Errorf("drift at %v comes before a matured reference day (%v)", DefaultDriftAfter, 24*time.Hour+timeout)
 	}
 	if r, ok := kinds[alerts.KindPrevalenceShift]; !ok || r.Model != TicketRouter {
 		t.Errorf("no prevalence shift rule on ticket-router: %+v", r)

@@ -18,9 +18,14 @@
 // 1.4%. A blocked payment is reviewed within hours; a missed fraud comes back
 // as a chargeback days to weeks later; a payment nobody disputes is never
 // labeled, and the daemon's default_label (legit after label_timeout) fills
-// it in. Part-way through, a new fraud pattern appears in online payments:
-// fraud rises to about 2.1% and the model catches only a quarter of the new
-// pattern, so fraud recall falls from about 0.85 to about 0.55.
+// it in. On day nine (once a whole day's labels have matured), a wave of
+// a new fraud pattern hits online payments: fraud rises to about 5.4% and
+// the model catches under half of the new pattern, with borderline scores,
+// so fraud recall falls from about 0.85 to about 0.55. The predicted mix
+// moves at once (payments predicted fraud go from about 1.6% to 3.4%),
+// while the chargebacks that show the missed frauds come back a day or
+// more later: the label-free early rule (EarlyRule) can see the wave
+// before the recall rules (RecallRule) can.
 //
 // Both streams carry what real pipelines send: re-sent lines (duplicates),
 // labels corrected later, labels that reach the daemon before their
@@ -33,6 +38,5 @@
 // NDJSON lines, stamped with the simulated time at which each is sent. Run
 // drives a Generator from the wall clock and posts the lines to a daemon's
 // /v1/predictions and /v1/labels. Config returns the daemon configuration the
-// scenario is written for, and AlertRules the alert rules it is meant to
-// trigger.
+// scenario is written for, with the alert rules it is meant to trigger.
 package sim

@@ -35,16 +35,18 @@ const (
 	// outageLength is how long the app outage lasts.
 	outageLength = 24 * time.Hour
 
-	// fraudBefore is the fraud prevalence before the drift; after it, each
-	// pattern has fraudOldAfter and fraudNewAfter.
+	// fraudBefore is the fraud prevalence before the drift; after it, the
+	// known pattern keeps fraudOldAfter and a wave of the new one adds
+	// fraudNewAfter: 5.4% of payments are fraud.
 	fraudBefore   = 0.014
-	fraudOldAfter = 0.0105
-	fraudNewAfter = 0.0105
+	fraudOldAfter = 0.014
+	fraudNewAfter = 0.04
 	// recallOld and recallNew are the chances that the model flags a fraud
 	// of the known and of the new pattern: overall recall is 0.85 before the
-	// drift and (0.85+0.25)/2 = 0.55 after it.
+	// drift and (0.014·0.85 + 0.04·0.45)/0.054 ≈ 0.554 after it, while the
+	// share of payments predicted fraud rises from 0.0158 to 0.0337 at once.
 	recallOld = 0.85
-	recallNew = 0.25
+	recallNew = 0.45
 	// falseAlarm is the chance that a legit payment is flagged.
 	falseAlarm = 0.004
 	// legitConfirmed is the share of unflagged legit payments that a
@@ -67,7 +69,7 @@ const (
 // Defaults of Options.
 const (
 	DefaultSpeed       = 7200.0
-	DefaultDriftAfter  = 2 * 24 * time.Hour
+	DefaultDriftAfter  = 9 * 24 * time.Hour
 	DefaultOutageAfter = 3*24*time.Hour + 9*time.Hour
 )
 
