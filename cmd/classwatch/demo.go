@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"net/http"
 	"net/url"
 	"os"
 	"path/filepath"
@@ -18,32 +19,54 @@ import (
 // own HTTP endpoints, serving until Ctrl-C.
 func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("demo", "demo [--listen ADDR] [--days N] [--speed X] [--seed N]", stderr)
-	listen := fs.String("listen", "127.0.0.1:9640", "listen `address` (port 0 picks a free one)")
-	days := fs.Int("days", 14, "simulated `days` of history to replay before going on in real time")
-	speed := fs.Float64("speed", sim.DefaultSpeed, "simulated seconds per real second")
-	seed := fs.Int64("seed", 1, "random `seed` of the simulation")
-	keep := fs.Bool("keep", false, "keep the temporary data directory on exit")
-	verbose := fs.Bool("verbose", false, "log the daemon's messages")
+	var o demoOptions
+	fs.StringVar(&o.listen, "listen", "127.0.0.1:9640", "listen `address` (port 0 picks a free one)")
+	fs.IntVar(&o.days, "days", 14, "simulated `days` of history to replay before going on in real time (at least 11)")
+	fs.Float64Var(&o.speed, "speed", sim.DefaultSpeed, "simulated seconds per real second")
+	fs.Int64Var(&o.seed, "seed", 1, "random `seed` of the simulation")
+	fs.BoolVar(&o.keep, "keep", false, "keep the temporary data directory on exit")
+	fs.BoolVar(&o.verbose, "verbose", false, "log the daemon's messages")
 	if err := parseFlags(fs, args, 0); err != nil {
 		return err
 	}
-	if *days <= 0 || *speed <= 0 {
-		return usagef("demo: --days and --speed must be positive")
+	if o.days < minDemoDays || o.speed <= 0 {
+		return usagef("demo: --days must be at least %d (the fraud wave comes on day %d) and --speed positive",
+			minDemoDays, int(sim.DefaultDriftAfter.Hours()/24))
 	}
+	return playDemo(ctx, o, stdout, stderr)
+}
 
+// minDemoDays is the shortest replay that shows the fraud wave and, two
+// simulated days later, the recall rules.
+const minDemoDays = 11
+
+// demoOptions are the demo's flags, and onEvent, which hears of each
+// alert's first firing (tests).
+type demoOptions struct {
+	listen        string
+	days          int
+	speed         float64
+	seed          int64
+	keep, verbose bool
+	onEvent       func(storyEvent)
+}
+
+// playDemo runs the demo with o until ctx ends.
+func playDemo(ctx context.Context, o demoOptions, stdout, stderr io.Writer) error {
 	dir, err := os.MkdirTemp("", "classwatch-demo-*")
 	if err != nil {
 		return fmt.Errorf("demo: %w", err)
 	}
-	if !*keep {
+	if !o.keep {
 		defer os.RemoveAll(dir)
 	}
 	opts := sim.Options{
-		Start: time.Now().UTC().Truncate(time.Hour).Add(-time.Duration(*days) * 24 * time.Hour),
-		Speed: *speed,
-		Seed:  *seed,
+		Start:      time.Now().UTC().Truncate(time.Hour).Add(-time.Duration(o.days) * 24 * time.Hour),
+		Speed:      o.speed,
+		Seed:       o.seed,
+		DriftAfter: sim.DefaultDriftAfter,
 	}
-	text, err := sim.Config(*listen, dir, opts)
+	text, err := sim.Config(o.listen, dir, opts)
 	if err != nil {
 		return fmt.Errorf("demo config: %w", err)
 	}
@@ -57,7 +80,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	}
 	cfg.Database = "" // the demo never touches a configured database
 	logOut := io.Discard
-	if *verbose {
+	if o.verbose {
 		logOut = stderr
 	}
 	d, err := newDaemon(ctx, cfg, newLogger(logOut, false))
@@ -68,6 +91,7 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		return err
 	}
 	base := d.baseURL()
+	drift := opts.Start.Add(opts.DriftAfter)
 	fmt.Fprintf(stdout, `classwatch demo: Plumtwig Mutual (a fictional bank), two models simulated at %.0f× real time.
 
   overview      %[2]s/
@@ -79,29 +103,38 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
   alerts        %[2]s/v1/alerts
 
 Data directory: %[3]s (config: %[4]s)
-Fraud recall on card-screen falls about 25s in; the 3d window shows it within a minute.
+A wave of a new fraud pattern hits card-screen about %.0[6]fs in (simulated %[7]s). Watch which
+rule sees it first: %[8]s (label-free, every %[9]s) or %[10]s (needs chargebacks).
 Press Ctrl-C to stop.
 
-`, *speed, base, dir, cfgPath, demoReportQuery(opts.Start))
+`, o.speed, base, dir, cfgPath, demoReportQuery(opts.Start), opts.DriftAfter.Seconds()/o.speed, clock(drift),
+		sim.EarlyRule, sim.Schedule(o.speed), sim.RecallRule)
+
+	began := time.Now()
+	st := newStory(stdout, began, drift, o.onEvent)
+	watchCtx, stopWatch := context.WithCancel(ctx)
+	defer stopWatch()
+	go st.watch(watchCtx, &http.Client{Timeout: 10 * time.Second}, base, time.Second/2)
 
 	simDone := make(chan struct{})
 	go func() {
 		defer close(simDone)
 		var last time.Time
 		progress := func(s sim.Stats) {
+			st.progress(s)
 			if time.Since(last) < 5*time.Second {
 				return
 			}
 			last = time.Now()
-			fmt.Fprintf(stdout, "simulated %s: %d predictions and %d labels sent (%d accepted, %d duplicates, %d rejected)\n",
-				s.SimTime.Format("2006-01-02 15:04"), s.Predictions, s.Labels, s.Accepted, s.Duplicates, s.Rejected)
+			st.printf("%6.1fs  simulated %s: %d predictions and %d labels sent (%d accepted, %d duplicates, %d rejected)\n",
+				time.Since(began).Seconds(), clock(s.SimTime), s.Predictions, s.Labels, s.Accepted, s.Duplicates, s.Rejected)
 		}
 		err := sim.Run(ctx, opts, base, nil, progress)
 		switch {
 		case err != nil && !errors.Is(err, context.Canceled):
-			fmt.Fprintf(stdout, "simulation stopped: %v (still serving; Ctrl-C to stop)\n", err)
+			st.printf("simulation stopped: %v (still serving; Ctrl-C to stop)\n", err)
 		case ctx.Err() == nil:
-			fmt.Fprintln(stdout, "simulation caught up with the present; still serving, Ctrl-C to stop")
+			st.printf("simulation caught up with the present; still serving, Ctrl-C to stop\n")
 		}
 	}()
 	err = d.serve(ctx)

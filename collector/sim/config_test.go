@@ -15,14 +15,16 @@ import (
 // demoConfig mirrors the configuration keys of README.md "Configuration", plus clock
 // (README.md "Join semantics and windows"), and nothing else, so a misspelt or extra key fails to decode.
 type demoConfig struct {
-	Listen     string         `yaml:"listen"`
-	Database   string         `yaml:"database"`
-	DataDir    string         `yaml:"data_dir"`
-	Clock      string         `yaml:"clock"`
-	Bucket     string         `yaml:"bucket"`
-	Confidence float64        `yaml:"confidence"`
-	Windows    []windowConfig `yaml:"windows"`
-	Models     []modelConfig  `yaml:"models"`
+	Listen   string `yaml:"listen"`
+	Database string `yaml:"database"`
+	DataDir  string `yaml:"data_dir"`
+	Clock    string `yaml:"clock"`
+	// MaintenanceInterval is README.md "Configuration"'s maintenance_interval.
+	MaintenanceInterval string         `yaml:"maintenance_interval"`
+	Bucket              string         `yaml:"bucket"`
+	Confidence          float64        `yaml:"confidence"`
+	Windows             []windowConfig `yaml:"windows"`
+	Models              []modelConfig  `yaml:"models"`
 	// Alerts belongs to the alerts package, which reads it as a node.
 	Alerts yaml.Node `yaml:"alerts"`
 }
@@ -152,10 +154,14 @@ func TestConfig(t *testing.T) {
 	if drop.Name != RecallRule {
 		t.Errorf("recall drop rule is named %q, want %s", drop.Name, RecallRule)
 	}
-	// The matured day (a day, lagged by the label timeout) must be whole
+	// The matured day (a day, lagged past the label timeout) must be whole
 	// before the drift, or the reference would hold drifted traffic.
-	if DefaultDriftAfter < 24*time.Hour+timeout {
-		t.Errorf("drift at %v comes before a matured reference day (%v)", DefaultDriftAfter, 24*time.Hour+timeout)
+	lag, err := windows.ParseDuration(MaturedLag)
+	if err != nil || lag <= timeout {
+		t.Errorf("matured window lag %q (%v) is not past the label timeout %v", MaturedLag, err, timeout)
+	}
+	if DefaultDriftAfter < 24*time.Hour+lag {
+		t.Errorf("drift at %v comes before a matured reference day (%v)", DefaultDriftAfter, 24*time.Hour+lag)
 	}
 	if r, ok := kinds[alerts.KindPrevalenceShift]; !ok || r.Model != TicketRouter {
 		t.Errorf("no prevalence shift rule on ticket-router: %+v", r)
