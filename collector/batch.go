@@ -77,6 +77,15 @@ func (b *batch) truncate(n int, k Kind) {
 	}
 }
 
+// rejectAll rejects every valid-so-far line of the batch for err, a store
+// limit the batch as a whole passed.
+func (b *batch) rejectAll(k Kind, err error) {
+	for i, it := range b.items {
+		b.reject(it.line, b.model(i, k), true, reasonStoreLimit, err)
+	}
+	b.truncate(0, k)
+}
+
 // reject records that line was rejected for reason. model is the model the
 // line named; registered says whether it is registered, so that only
 // registered names become metric label values.

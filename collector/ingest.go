@@ -409,7 +409,12 @@ func (c *Collector) flush(ctx context.Context, b *batch, run ingestRun, now time
 		} else {
 			latest, err = c.commitPredictions(ctx, b, now, res)
 		}
-		if err != nil {
+		switch {
+		case errors.Is(err, store.ErrLimit):
+			// The same batch would fail the same way again: its lines are
+			// rejected, so no client or stream retries it for ever.
+			b.rejectAll(run.kind, err)
+		case err != nil:
 			if ctx.Err() == nil {
 				c.metrics.storeErrors.WithLabelValues("ingest_" + endpoint).Inc()
 			}

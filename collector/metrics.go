@@ -20,6 +20,7 @@ const (
 	reasonForbidden      = "forbidden"
 	reasonConflict       = "conflict"
 	reasonTooOld         = "too_old"
+	reasonStoreLimit     = "store_limit"
 )
 
 // Label results that do not come from a store outcome.

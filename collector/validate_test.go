@@ -1,7 +1,9 @@
 package collector_test
 
 import (
+	"fmt"
 	"net/http"
+	"strings"
 	"testing"
 	"time"
 
@@ -97,4 +99,38 @@ func testRetentionHorizon(t *testing.T, be backend) {
 		{1, `"at": 1970-01-02T00:00:00Z is older than the model's retention of 720h0m0s (buckets before 2026-01-30T12:00:00Z are purged)`},
 		{2, `older than the model's retention`},
 	})
+}
+
+// TestStoreLimit checks that a batch the store refuses as a whole for a
+// documented limit (PostgreSQL: more new label-history day partitions than
+// one batch may create) has every line rejected with the limit named and
+// answers 400, not 503: a client or a stream would otherwise resend it for
+// ever. The same labels sent in two parts are joined.
+func TestStoreLimit(t *testing.T) {
+	b := setup(t, postgresBackend(), func(o *collector.Options) {
+		o.Models = []collector.ModelPolicy{{Name: "card-fraud", Classes: []string{"legit", "fraud"}, Bucket: time.Hour}}
+	})
+	const days = 367 // one more day than pgstore's per-batch limit
+	start := time.Date(2025, 2, 1, 12, 0, 0, 0, time.UTC)
+	var preds, labels []string
+	for d := range days {
+		at := start.Add(time.Duration(d) * 24 * time.Hour).Format(time.RFC3339)
+		preds = append(preds, fmt.Sprintf(`{"model":"card-fraud","id":"p-%03d","at":%q,"predicted":"legit"}`, d, at))
+		labels = append(labels, fmt.Sprintf(`{"model":"card-fraud","id":"p-%03d","actual":"fraud"}`, d))
+	}
+	if code, r, _ := b.post(t, "/v1/predictions", ndjson, lines(preds...)); code != http.StatusOK || r.Accepted != days {
+		t.Fatalf("predictions: status %d, %+v", code, r)
+	}
+	code, r, _ := b.post(t, "/v1/labels", ndjson, lines(labels...))
+	if code != http.StatusBadRequest || r.Accepted != 0 || len(r.Rejected)+r.RejectedOmitted != days {
+		t.Fatalf("labels over %d days: status %d, accepted %d, %d rejected; want 400 with every line rejected", days, code, r.Accepted, len(r.Rejected)+r.RejectedOmitted)
+	}
+	if got := r.Rejected[0]; got.Line != 1 || !strings.Contains(got.Error, "more than the 366 one batch may create") {
+		t.Errorf("first rejection %+v; want line 1 naming the limit", got)
+	}
+	for _, part := range [][]string{labels[:200], labels[200:]} {
+		if code, r, _ := b.post(t, "/v1/labels", ndjson, lines(part...)); code != http.StatusOK || r.Accepted != len(part) {
+			t.Fatalf("labels in parts: status %d, %+v", code, r)
+		}
+	}
 }

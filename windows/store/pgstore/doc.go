@@ -94,10 +94,12 @@
 // label_versions gets a day partition only when a version is written into
 // that day (a label joined, an early label joining its prediction, an
 // implied label): predictions alone create none, however far back their
-// times reach. One batch, and one ApplyLabelTimeout call, creates at most
-// 32 new day partitions (maxNewDays). A batch that would need more is
-// refused with store.ErrLimit and keeps nothing; the same batch fails the
-// same way again, so callers answer it as bad input, not with a retry.
+// times reach. One batch may need at most 366 new day partitions
+// (maxBatchDays: a label backfill over a year of predictions), created 32
+// per short transaction (maxNewDays). A batch that would need more is
+// refused with store.ErrLimit before any is created and keeps nothing; the
+// same batch fails the same way again, so the collector rejects its lines
+// (reason store_limit) instead of answering 503.
 // ApplyLabelTimeout labels the predictions of at most 32 days per call,
 // oldest first, and leaves the rest to the next calls. PurgeRaw drops day
 // partitions eight per transaction: dropping one locks label_versions

@@ -16,11 +16,17 @@ import (
 // prediction's bucket start.
 const day = 24 * time.Hour
 
-// maxNewDays bounds the label-history day partitions one batch (a
-// prediction or label batch, or one ApplyLabelTimeout call) may create. A
-// batch that needs more is refused with store.ErrLimit; see the package
-// documentation.
+// maxNewDays bounds the label-history day partitions one DDL transaction
+// creates, and the days one ApplyLabelTimeout call labels: each partition
+// created holds a strong lock on label_versions until its transaction
+// ends, so they are made a few at a time.
 const maxNewDays = 32
+
+// maxBatchDays bounds the new day partitions one batch may need: a year of
+// prediction days and a leap day, enough for a label backfill over a year
+// of predictions in one batch. A batch that needs more is refused with
+// store.ErrLimit; see the package documentation.
+const maxBatchDays = 366
 
 // dropChunk is how many day partitions one transaction of PurgeRaw drops:
 // dropping a partition locks the whole label_versions table against every
@@ -103,10 +109,11 @@ func boundDays(model int32, buckets []time.Time) ([]time.Time, []modelDay) {
 }
 
 // ensureDays makes sure the day partitions of need exist and that
-// raw_partitions lists each (model, day), in a short transaction of its
-// own: creating a partition takes a strong lock on the parent table, which
-// must not be held by an ingest transaction. It refuses to create more
-// than maxNewDays partitions (store.ErrLimit). A process remembers what it
+// raw_partitions lists each (model, day), in short transactions of their
+// own, maxNewDays partitions each: creating a partition takes a strong lock
+// on the parent table, which must not be held by an ingest transaction. It
+// refuses a batch that needs more than maxBatchDays new partitions
+// (store.ErrLimit) before creating any. A process remembers what it
 // ensured, so a steady stream of batches skips this step.
 func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 	s.mu.Lock()
@@ -120,26 +127,52 @@ func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 	if len(miss) == 0 {
 		return nil
 	}
-	models := make([]int32, len(miss))
-	days := make([]time.Time, len(miss))
 	var names []string
-	for i, md := range miss {
+	for _, md := range miss {
+		if n := partitionName(time.UnixMicro(md.day).UTC()); !slices.Contains(names, n) {
+			names = append(names, n)
+		}
+	}
+	missing, err := queryStrings(ctx, s.pool, sqlMissingRel, names)
+	if err != nil {
+		return fmt.Errorf("look up day partitions: %w", err)
+	}
+	if len(missing) > maxBatchDays {
+		return fmt.Errorf("batch needs %d new label history day partitions, more than the %d one batch may create; send it in parts by prediction time: %w",
+			len(missing), maxBatchDays, store.ErrLimit)
+	}
+	for chunk := range slices.Chunk(miss, maxNewDays) {
+		if err := s.createDays(ctx, chunk); err != nil {
+			return fmt.Errorf("create day partitions: %w", err)
+		}
+		s.mu.Lock()
+		for _, md := range chunk {
+			s.days[md] = true
+		}
+		s.mu.Unlock()
+	}
+	return nil
+}
+
+// createDays creates the missing day partitions of chunk and lists each
+// (model, day) in raw_partitions, in one transaction.
+func (s *Store) createDays(ctx context.Context, chunk []modelDay) error {
+	models := make([]int32, len(chunk))
+	days := make([]time.Time, len(chunk))
+	var names []string
+	for i, md := range chunk {
 		models[i], days[i] = md.model, time.UnixMicro(md.day).UTC()
 		if n := partitionName(days[i]); !slices.Contains(names, n) {
 			names = append(names, n)
 		}
 	}
-	err := pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
+	return pgx.BeginFunc(ctx, s.pool, func(tx pgx.Tx) error {
 		if _, err := tx.Exec(ctx, sqlLockXact, s.keys.ddl); err != nil {
 			return err
 		}
 		missing, err := queryStrings(ctx, tx, sqlMissingRel, names)
 		if err != nil {
 			return err
-		}
-		if len(missing) > maxNewDays {
-			return fmt.Errorf("batch needs %d new label history day partitions, more than the %d one batch may create: %w",
-				len(missing), maxNewDays, store.ErrLimit)
 		}
 		for _, d := range days {
 			name := partitionName(d)
@@ -156,18 +189,6 @@ func (s *Store) ensureDays(ctx context.Context, need []modelDay) error {
 		_, err = tx.Exec(ctx, sqlAddDays, models, days)
 		return err
 	})
-	if errors.Is(err, store.ErrLimit) {
-		return err
-	}
-	if err != nil {
-		return fmt.Errorf("create day partitions: %w", err)
-	}
-	s.mu.Lock()
-	for _, md := range miss {
-		s.days[md] = true
-	}
-	s.mu.Unlock()
-	return nil
 }
 
 // dropDays drops the partitions of every day whose models have all purged
@@ -231,7 +252,7 @@ func (s *Store) forgetDays(match func(modelDay) bool) {
 }
 
 // queryStrings runs a query returning one text column.
-func queryStrings(ctx context.Context, tx pgx.Tx, sql string, args ...any) ([]string, error) {
+func queryStrings(ctx context.Context, tx conn, sql string, args ...any) ([]string, error) {
 	rows, err := tx.Query(ctx, sql, args...)
 	if err != nil {
 		return nil, err

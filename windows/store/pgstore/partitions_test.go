@@ -22,18 +22,19 @@ func partitionCount(t *testing.T, s *Store) int {
 
 // TestFarPastDays checks the partition limits of the package documentation
 // ("Retention"): predictions spread over many far-past days create no
-// partition; a label batch needing more than maxNewDays new partitions is
-// refused with store.ErrLimit (not store.ErrUnavailable, which callers
-// retry) and keeps nothing; batches within the limit proceed; the label
-// timeout creates at most maxNewDays per call; and PurgeRaw drops every
-// partition, dropChunk per transaction.
+// partition; a label batch needing more than maxBatchDays new partitions
+// is refused with store.ErrLimit (not store.ErrUnavailable, which callers
+// retry) and keeps nothing; a batch within the limit proceeds, its
+// partitions made maxNewDays per transaction; the label timeout creates at
+// most maxNewDays per call; and PurgeRaw drops every partition, dropChunk
+// per transaction.
 func TestFarPastDays(t *testing.T) {
 	s := newStore(t)
 	ctx := t.Context()
 	if _, err := s.EnsureModel(ctx, "card-fraud", []string{"legit", "fraud"}, 0); err != nil {
 		t.Fatal(err)
 	}
-	const days = 3*maxNewDays + 5
+	const days = maxBatchDays + 2*maxNewDays + 5
 	start := time.Date(1970, 1, 2, 12, 0, 0, 0, time.UTC)
 	var (
 		preds  []store.Prediction
@@ -52,22 +53,22 @@ func TestFarPastDays(t *testing.T) {
 	if n := partitionCount(t, s); n != 0 {
 		t.Errorf("after predictions over %d days: %d partitions, want 0 (none is written to)", days, n)
 	}
-	_, err := s.IngestLabels(ctx, labels[:maxNewDays+1], now)
+	_, err := s.IngestLabels(ctx, labels[:maxBatchDays+1], now)
 	if !errors.Is(err, store.ErrLimit) || errors.Is(err, store.ErrUnavailable) {
-		t.Fatalf("labels over %d new days: err %v, want store.ErrLimit", maxNewDays+1, err)
+		t.Fatalf("labels over %d new days: err %v, want store.ErrLimit", maxBatchDays+1, err)
 	}
 	if n := partitionCount(t, s); n != 0 {
 		t.Errorf("after the refused batch: %d partitions, want 0", n)
 	}
-	res, err := s.IngestLabels(ctx, labels[:maxNewDays], now)
+	res, err := s.IngestLabels(ctx, labels[:maxBatchDays], now)
 	if err != nil {
-		t.Fatalf("labels over %d new days: %v", maxNewDays, err)
+		t.Fatalf("labels over %d new days: %v", maxBatchDays, err)
 	}
-	if res.Outcomes[0] != store.LabelMatched || partitionCount(t, s) != maxNewDays {
-		t.Errorf("labels over %d days: outcome %v, %d partitions; want matched, %d", maxNewDays, res.Outcomes[0], partitionCount(t, s), maxNewDays)
+	if res.Outcomes[0] != store.LabelMatched || partitionCount(t, s) != maxBatchDays {
+		t.Errorf("labels over %d days: outcome %v, %d partitions; want matched, %d", maxBatchDays, res.Outcomes[0], partitionCount(t, s), maxBatchDays)
 	}
 	// The label timeout labels the rest, maxNewDays new days per call.
-	for call, want := range []int64{maxNewDays, maxNewDays, days - 3*maxNewDays, 0} {
+	for call, want := range []int64{maxNewDays, maxNewDays, days - maxBatchDays - 2*maxNewDays, 0} {
 		n, _, err := s.ApplyLabelTimeout(ctx, "card-fraud", "legit", time.Hour, now)
 		if err != nil || n != want {
 			t.Fatalf("ApplyLabelTimeout call %d: %d, %v; want %d", call+1, n, err, want)
