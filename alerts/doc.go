@@ -70,7 +70,9 @@
 //
 // The daemon's config holds the rules under "alerts:" and the receivers
 // under "notifiers:" (ParseRules, ParseNotifiers; "classwatch rules check
-// F" runs CheckFile). Every rule takes name, kind, model (a name or "all"),
+// F" runs the daemon's own config loader, which calls them and
+// CheckWindows; CheckFile checks the two sections of a file alone). Every
+// rule takes name, kind, model (a name or "all"),
 // window (except cusum and no_traffic), and optionally schedule (cron,
 // UTC; default every minute), severity (critical, warning or info; default
 // warning), labels, annotations (text/template over TemplateData),

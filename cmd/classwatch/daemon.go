@@ -15,6 +15,7 @@ import (
 	"github.com/classwatch/classwatch/collector/natsjs"
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store"
+	"github.com/classwatch/classwatch/windows/store/lease"
 )
 
 // Each teardown step has its own budget, so one slow step (a stalled
@@ -283,12 +284,8 @@ func (d *daemon) maintainLoop(ctx context.Context) {
 	if every <= 0 {
 		return
 	}
-	var lease store.Lease
-	defer func() {
-		if lease != nil {
-			_ = lease.Release(context.WithoutCancel(ctx))
-		}
-	}()
+	leader := lease.New(d.store, maintenanceLock, lease.Options{})
+	defer func() { _ = leader.Release(context.WithoutCancel(ctx)) }()
 	t := time.NewTicker(every)
 	defer t.Stop()
 	for {
@@ -297,20 +294,13 @@ func (d *daemon) maintainLoop(ctx context.Context) {
 			return
 		case <-t.C:
 		}
-		if lease != nil && lease.Alive(ctx) != nil {
-			_ = lease.Release(ctx)
-			lease = nil
+		held, err := leader.Lead(ctx)
+		if err != nil {
+			d.log.Warn("take maintenance lock", "err", err)
+			continue
 		}
-		if lease == nil {
-			l, err := d.store.TryLead(ctx, maintenanceLock)
-			if err != nil {
-				d.log.Warn("take maintenance lock", "err", err)
-				continue
-			}
-			if l == nil {
-				continue // another replica runs the jobs
-			}
-			lease = l
+		if !held {
+			continue // another replica runs the jobs
 		}
 		if err := d.collector.Maintain(ctx, d.jobTime()); err != nil && !errors.Is(err, context.Canceled) {
 			d.log.Warn("maintenance", "err", err)
