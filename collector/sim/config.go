@@ -79,7 +79,9 @@ models:
     model: %s
     window: 1d
     classes: [%s]
-    margin: 0.005
+    # No margin: the reference day exists only from the wave on (its lag
+    # reaches the first day then), so there is no quiet stretch to guard.
+    margin: 0
     reference: {window: %s}
     schedule: %q
     fire_after: 2
