@@ -32,12 +32,13 @@ type asOf struct {
 	bucket  time.Duration
 	first   time.Time // the oldest bucket held
 	buckets map[int64][]count
+	scores  map[int64]*scoreAgg
 	// changes are the alert records saved with history, in order.
 	changes []store.AlertRecord
 }
 
 func newAsOf(info store.ModelInfo, bucket time.Duration, first time.Time) *asOf {
-	a := &asOf{info: info, index: make(map[string]int32, len(info.Classes)), bucket: bucket, first: first, buckets: map[int64][]count{}}
+	a := &asOf{info: info, index: make(map[string]int32, len(info.Classes)), bucket: bucket, first: first, buckets: map[int64][]count{}, scores: map[int64]*scoreAgg{}}
 	a.info.LatestAt, a.info.Predictions, a.info.Labeled = time.Time{}, 0, 0
 	for i, c := range info.Classes {
 		a.index[c] = int32(i)
@@ -61,6 +62,7 @@ func (a *asOf) class(name string) int32 {
 func (a *asOf) apply(e *store.Event) {
 	b := e.Bucket.UnixNano()
 	p := a.class(e.Predicted)
+	a.applyScores(e)
 	if e.Kind == store.EventPrediction {
 		a.add(b, predictedOnly, p, 1)
 		a.info.Predictions++
@@ -140,6 +142,7 @@ func (a *asOf) Counts(_ context.Context, q store.Query) (store.Counts, error) {
 				out.Cells = append(out.Cells, store.Cell{Bucket: at, Actual: a.info.Classes[c.actual], Predicted: a.info.Classes[c.predicted], N: c.n})
 			}
 		}
+		a.addScoreCounts(&out, b) // a bucket with scores has predictions
 	}
 	return out, nil
 }

@@ -20,7 +20,11 @@ import (
 // The test history: a fictional bank's card screen (legit/fraud, recall
 // 0.9 except on day 5, when it falls to 0.4) and its support desk's ticket
 // router (three queues, whose output mix shifts on day 6 and which sends
-// nothing for five hours of day 7). Labels come 0–8 hours late, some
+// nothing for five hours of day 7). The screen sends a fraud score with
+// most predictions: confident and fairly calibrated, except that it stays
+// as confident on the bad day (so its calibration error rises) and that
+// its fraud scores crowd toward the middle on the second half of day 6.
+// Labels come 0–8 hours late, some
 // before their prediction is logged, a few are corrected, and frauds
 // never confirmed get the default label after 36 hours.
 const (
@@ -43,6 +47,7 @@ type history struct {
 
 func generate(seed uint64) history {
 	rng := rand.New(rand.NewPCG(seed, 0x6261636b74657374))
+	scoreRNG := rand.New(rand.NewPCG(seed, 0x73636f726573)) // apart, so the rest of the history stays as it was
 	h := history{times: map[string][]time.Time{}}
 	for hour := range 8 * 24 {
 		start := origin.Add(time.Duration(hour) * time.Hour)
@@ -61,7 +66,8 @@ func generate(seed uint64) history {
 			if (actual == "fraud" && rng.Float64() > recall) || (actual == "legit" && rng.Float64() < 0.05) {
 				predicted = map[string]string{"fraud": "legit", "legit": "fraud"}[actual]
 			}
-			h.preds = append(h.preds, store.Prediction{Model: screen, ID: id, At: at, Bucket: at.Truncate(bucket), Predicted: predicted})
+			h.preds = append(h.preds, store.Prediction{Model: screen, ID: id, At: at, Bucket: at.Truncate(bucket), Predicted: predicted,
+				Scores: screenScores(scoreRNG, at, predicted)})
 			h.times[screen] = append(h.times[screen], at)
 			if actual == "fraud" && rng.IntN(10) == 0 {
 				continue // never confirmed: implied legit after the timeout
@@ -97,6 +103,28 @@ func generate(seed uint64) history {
 		}
 	}
 	return h
+}
+
+// screenScores returns a screen prediction's scores: none for one in ten,
+// only the predicted class's for another one in ten (the other counts as
+// 0), else both.
+func screenScores(rng *rand.Rand, at time.Time, predicted string) map[string]float64 {
+	u := rng.Float64()
+	conf := 0.9 + 0.1*u
+	if predicted == "fraud" {
+		conf = 0.6 + 0.4*u
+	}
+	if at.After(day(5.5)) && at.Before(day(6)) {
+		conf = 0.5 + 0.2*u
+	}
+	switch rng.IntN(10) {
+	case 0:
+		return nil
+	case 1:
+		return map[string]float64{predicted: conf}
+	}
+	other := map[string]string{"fraud": "legit", "legit": "fraud"}[predicted]
+	return map[string]float64{predicted: conf, other: 1 - conf}
 }
 
 func openStore(t *testing.T, h history) store.Store {
@@ -147,6 +175,8 @@ func testRules() []alerts.Rule {
 		{Name: "missed-fraud", Kind: alerts.KindConfusionRise, Model: screen, Window: "12h", Schedule: hourly, Pairs: []alerts.Pair{{Actual: "fraud", Predicted: "legit"}}, Reference: ref},
 		{Name: "mix", Kind: alerts.KindPrevalenceShift, Model: alerts.AllModels, Window: "12h", Schedule: hourly, Reference: ref},
 		{Name: "queues", Kind: alerts.KindOutputShift, Model: alerts.AllModels, Window: "12h", Schedule: hourly, Reference: ref, PSIThreshold: 0.1},
+		{Name: "fraud-scores", Kind: alerts.KindScoreShift, Model: screen, Window: "12h", Schedule: hourly, Classes: []string{"fraud"}, Reference: ref, Threshold: 0.1},
+		{Name: "calibration", Kind: alerts.KindCeiling, Model: screen, Window: "12h", Schedule: hourly, Metric: "calibration_error", Interval: alerts.IntervalNone, Threshold: 0.08},
 		{Name: "quiet", Kind: alerts.KindNoTraffic, Model: alerts.AllModels, Schedule: "*/20 * * * *", QuietFor: 2 * time.Hour},
 	}
 }
@@ -195,7 +225,7 @@ func TestReplayMatchesRecount(t *testing.T) {
 	if r := byName["quiet"]; len(r.Episodes) != 1 || *r.Episodes[0].ResolvedAt != day(6.5).Add(5*time.Hour).Add(20*time.Minute) {
 		t.Errorf("quiet: episodes %s, want one for the router's five silent hours", formatEpisodes(r.Episodes))
 	}
-	for _, name := range []string{"recall-drop", "recall-drop-fixed", "queues"} {
+	for _, name := range []string{"recall-drop", "recall-drop-fixed", "queues", "fraud-scores", "calibration"} {
 		if len(byName[name].Episodes) == 0 {
 			t.Errorf("%s: no episode; the history should trip it", name)
 		}
@@ -267,13 +297,13 @@ func recount(t *testing.T, st store.Store, h history, opts Options) Report {
 			if p.rule.Model != info.Name && p.rule.Model != alerts.AllModels {
 				continue
 			}
-			slow := &recountStore{st: st, info: info, times: h.times[info.Name]}
+			slow := &recountStore{st: st, scores: newScoreHistory(h, info.Name), info: info, times: h.times[info.Name]}
 			view := func(model, window string) (windows.View, bool) {
 				i := slices.IndexFunc(testWindows, func(w windows.Window) bool { return w.Name == window })
 				w := testWindows[i]
 				wm := windows.Watermark(slow.at, bucket)
 				from, to := w.Bounds(wm)
-				c, err := st.CountsAsOf(ctx, store.Query{Model: model, From: from, To: to}, slow.at)
+				c, err := slow.Counts(ctx, store.Query{Model: model, From: from, To: to})
 				if err != nil {
 					t.Fatal(err)
 				}
@@ -281,7 +311,11 @@ func recount(t *testing.T, st store.Store, h history, opts Options) Report {
 				if err != nil {
 					t.Fatal(err)
 				}
-				return windows.View{Model: model, Window: w, From: from, To: to, Watermark: wm, Matrix: m, Predicted: pred}, true
+				scores, err := windows.ScoresFromCounts(info.Classes, c)
+				if err != nil {
+					t.Fatal(err)
+				}
+				return windows.View{Model: model, Window: w, From: from, To: to, Watermark: wm, Matrix: m, Predicted: pred, Scores: scores}, true
 			}
 			slow.at = opts.From
 			watermark := func(string) (time.Time, bool) { return windows.Watermark(slow.at, bucket), true }
@@ -311,14 +345,16 @@ func recount(t *testing.T, st store.Store, h history, opts Options) Report {
 	return rep
 }
 
-// recountStore answers the evaluators from CountsAsOf at its clock; it
-// borrows asOf only to record state changes.
+// recountStore answers the evaluators from CountsAsOf at its clock (and
+// the score aggregates from the brute-force computation when the store
+// leaves them out); it borrows asOf only to record state changes.
 type recountStore struct {
 	asOf
-	st    store.Store
-	info  store.ModelInfo
-	times []time.Time
-	at    time.Time
+	st     store.Store
+	scores *scoreHistory
+	info   store.ModelInfo
+	times  []time.Time
+	at     time.Time
 }
 
 func (s *recountStore) Models(context.Context) ([]store.ModelInfo, error) {
@@ -333,5 +369,9 @@ func (s *recountStore) Models(context.Context) ([]store.ModelInfo, error) {
 }
 
 func (s *recountStore) Counts(ctx context.Context, q store.Query) (store.Counts, error) {
-	return s.st.CountsAsOf(ctx, q, s.at)
+	c, err := s.st.CountsAsOf(ctx, q, s.at)
+	if err != nil {
+		return c, err
+	}
+	return withScores(c, s.scores, s.info.Classes, q, s.at), nil
 }

@@ -52,14 +52,15 @@ func replayModel(ctx context.Context, opts Options, info store.ModelInfo, plans 
 	rctx, cancel := context.WithCancel(ctx)
 	defer cancel()
 	f := newFeed(rctx, opts.Store, store.EventQuery{
-		Model: info.Name, From: start, To: windows.BucketStart(opts.To, mo.Bucket).Add(mo.Bucket), Until: opts.To,
+		Model: info.Name, From: start, To: windows.BucketStart(opts.To, mo.Bucket).Add(mo.Bucket), Until: opts.To, Scores: true,
 	})
 	var pending store.Changes
 	flush := func(at time.Time) {
 		clock = at
-		if len(pending.Cells)+len(pending.Predicted) > 0 {
+		if pendingLen(&pending) > 0 {
 			tr.Apply(pending, nil)
-			pending.Cells, pending.Predicted = pending.Cells[:0], pending.Predicted[:0]
+			pending = store.Changes{Cells: pending.Cells[:0], Predicted: pending.Predicted[:0], Scores: pending.Scores[:0],
+				Calibration: pending.Calibration[:0], Brier: pending.Brier[:0]}
 		}
 	}
 	for {
@@ -77,7 +78,8 @@ func replayModel(ctx context.Context, opts Options, info store.ModelInfo, plans 
 			}
 			as.apply(e)
 			addChanges(&pending, info.Name, e)
-			if len(pending.Cells)+len(pending.Predicted) >= flushSize {
+			addScoreChanges(&pending, info.Name, as.info.Classes, e)
+			if pendingLen(&pending) >= flushSize {
 				flush(e.At)
 			}
 			f.pop()
@@ -154,6 +156,11 @@ func addChanges(ch *store.Changes, model string, e *store.Event) {
 		ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: e.Bucket, Actual: e.Old, Predicted: e.Predicted, N: -1})
 	}
 	ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: e.Bucket, Actual: e.Actual, Predicted: e.Predicted, N: 1})
+}
+
+// pendingLen is the number of changes gathered in ch.
+func pendingLen(ch *store.Changes) int {
+	return len(ch.Cells) + len(ch.Predicted) + len(ch.Scores) + len(ch.Calibration) + len(ch.Brier)
 }
 
 // feed reads a model's events on its own goroutine, a chunk at a time, so
