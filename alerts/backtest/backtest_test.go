@@ -297,7 +297,7 @@ func recount(t *testing.T, st store.Store, h history, opts Options) Report {
 			if p.rule.Model != info.Name && p.rule.Model != alerts.AllModels {
 				continue
 			}
-			slow := &recountStore{st: st, scores: newScoreHistory(h, info.Name), info: info, times: h.times[info.Name]}
+			slow := &recountStore{st: st, info: info, times: h.times[info.Name]}
 			view := func(model, window string) (windows.View, bool) {
 				i := slices.IndexFunc(testWindows, func(w windows.Window) bool { return w.Name == window })
 				w := testWindows[i]
@@ -345,16 +345,14 @@ func recount(t *testing.T, st store.Store, h history, opts Options) Report {
 	return rep
 }
 
-// recountStore answers the evaluators from CountsAsOf at its clock (and
-// the score aggregates from the brute-force computation when the store
-// leaves them out); it borrows asOf only to record state changes.
+// recountStore answers the evaluators from CountsAsOf at its clock; it
+// borrows asOf only to record state changes.
 type recountStore struct {
 	asOf
-	st     store.Store
-	scores *scoreHistory
-	info   store.ModelInfo
-	times  []time.Time
-	at     time.Time
+	st    store.Store
+	info  store.ModelInfo
+	times []time.Time
+	at    time.Time
 }
 
 func (s *recountStore) Models(context.Context) ([]store.ModelInfo, error) {
@@ -369,9 +367,5 @@ func (s *recountStore) Models(context.Context) ([]store.ModelInfo, error) {
 }
 
 func (s *recountStore) Counts(ctx context.Context, q store.Query) (store.Counts, error) {
-	c, err := s.st.CountsAsOf(ctx, q, s.at)
-	if err != nil {
-		return c, err
-	}
-	return withScores(c, s.scores, s.info.Classes, q, s.at), nil
+	return s.st.CountsAsOf(ctx, q, s.at)
 }

@@ -2,8 +2,6 @@ package backtest
 
 import (
 	"cmp"
-	"maps"
-	"math"
 	"slices"
 	"time"
 
@@ -15,9 +13,10 @@ import (
 // predictions carry scores, the counts of the score bins above 0 per
 // class (every class's bin 0 is the scored predictions less those), and
 // per bin of the predicted class's score the labeled predictions'
-// calibration and Brier sums. Float sums are kept as the stores keep
-// them, in 1e-9 units rounded once per prediction, so a correction takes
-// away exactly what the earlier label added.
+// calibration and Brier sums. The terms come from store.NewScoreTerms and
+// the sums are kept as the stores keep them, in 1e-9 units, so a
+// correction takes away exactly what the earlier label added and the
+// sweep's sums equal the store's as-of read.
 type scoreAgg struct {
 	scored int64
 	above  map[classBin]int64
@@ -33,36 +32,6 @@ type classBin struct {
 // predicted class's score and of their Brier terms (1e-9 units), and how
 // many have label == predicted.
 type calSum struct{ n, sum, correct, brier int64 }
-
-// nano returns x in 1e-9 units, rounded half to even, as the stores round
-// score sums.
-func nano(x float64) int64 { return int64(math.RoundToEven(x * 1e9)) }
-
-// brierTerm is a prediction's Brier term for label actual, in 1e-9 units:
-// Σ over its scored classes of (s_k − 1[actual = k])², in class-name
-// order, plus 1 when actual has no score (a missing score counts as 0),
-// rounded once.
-func brierTerm(scores map[string]float64, actual string) int64 {
-	var sum float64
-	for _, k := range slices.Sorted(maps.Keys(scores)) {
-		d := scores[k]
-		if k == actual {
-			d--
-		}
-		sum += d * d
-	}
-	if _, ok := scores[actual]; !ok {
-		sum++
-	}
-	return nano(sum)
-}
-
-func correct(actual, predicted string) int64 {
-	if actual == predicted {
-		return 1
-	}
-	return 0
-}
 
 // applyScores adds a scored event's effect on its bucket's score
 // aggregates: a prediction counts each class's score in its bin, a label
@@ -87,12 +56,12 @@ func (a *asOf) applyScores(e *store.Event) {
 		}
 		return
 	}
-	s := e.Scores[e.Predicted]
-	c := &agg.cal[store.ScoreBin(s)]
+	st, _ := store.NewScoreTerms(e.Scores, e.Predicted)
+	c := &agg.cal[st.Bin]
 	if e.Old != "" {
-		c.n, c.sum, c.correct, c.brier = c.n-1, c.sum-nano(s), c.correct-correct(e.Old, e.Predicted), c.brier-brierTerm(e.Scores, e.Old)
+		c.n, c.sum, c.correct, c.brier = c.n-1, c.sum-st.Pred, c.correct-store.Correct(e.Old, e.Predicted), c.brier-st.Brier(e.Old)
 	}
-	c.n, c.sum, c.correct, c.brier = c.n+1, c.sum+nano(s), c.correct+correct(e.Actual, e.Predicted), c.brier+brierTerm(e.Scores, e.Actual)
+	c.n, c.sum, c.correct, c.brier = c.n+1, c.sum+st.Pred, c.correct+store.Correct(e.Actual, e.Predicted), c.brier+st.Brier(e.Actual)
 }
 
 // addScoreCounts appends bucket b's score aggregates to out as the stores
@@ -133,12 +102,12 @@ func (a *asOf) addScoreCounts(out *store.Counts, b int64) {
 		if c == (calSum{}) {
 			continue
 		}
-		out.Calibration = append(out.Calibration, store.CalibrationCount{Bucket: at, Bin: bin, N: c.n, ScoreSum: float64(c.sum) / 1e9, Correct: c.correct})
+		out.Calibration = append(out.Calibration, store.CalibrationCount{Bucket: at, Bin: bin, N: c.n, ScoreSum: store.FromNano(c.sum), Correct: c.correct})
 		brier.N += c.n
 		brierNano += c.brier
 	}
 	if brier.N != 0 || brierNano != 0 {
-		brier.Sum = float64(brierNano) / 1e9
+		brier.Sum = store.FromNano(brierNano)
 		out.Brier = append(out.Brier, brier)
 	}
 }
@@ -163,11 +132,10 @@ func addScoreChanges(ch *store.Changes, model string, classes []string, e *store
 		}
 		return
 	}
-	s := e.Scores[e.Predicted]
-	bin, sum := store.ScoreBin(s), float64(nano(s))/1e9
+	st, _ := store.NewScoreTerms(e.Scores, e.Predicted)
 	move := func(actual string, n int64) {
-		ch.Calibration = append(ch.Calibration, store.CalibrationDelta{Model: model, Bucket: e.Bucket, Bin: bin, N: n, ScoreSum: float64(n) * sum, Correct: n * correct(actual, e.Predicted)})
-		ch.Brier = append(ch.Brier, store.BrierDelta{Model: model, Bucket: e.Bucket, N: n, Sum: float64(n) * float64(brierTerm(e.Scores, actual)) / 1e9})
+		ch.Calibration = append(ch.Calibration, store.CalibrationDelta{Model: model, Bucket: e.Bucket, Bin: st.Bin, N: n, ScoreSum: store.FromNano(n * st.Pred), Correct: n * store.Correct(actual, e.Predicted)})
+		ch.Brier = append(ch.Brier, store.BrierDelta{Model: model, Bucket: e.Bucket, N: n, Sum: store.FromNano(n * st.Brier(actual))})
 	}
 	if e.Old != "" {
 		move(e.Old, -1)
