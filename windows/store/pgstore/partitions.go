@@ -174,12 +174,16 @@ func (s *Store) createDays(ctx context.Context, chunk []modelDay) error {
 		if err != nil {
 			return err
 		}
+		// IF NOT EXISTS: the advisory lock makes no catalog news visible,
+		// so a partition a concurrent batch has just created may still
+		// look missing to the query above; CREATE TABLE locks the parent
+		// first and then sees it.
 		for _, d := range days {
 			name := partitionName(d)
 			if !slices.Contains(missing, name) {
 				continue
 			}
-			ddl := fmt.Sprintf("CREATE TABLE %s PARTITION OF label_versions FOR VALUES FROM ('%s') TO ('%s')",
+			ddl := fmt.Sprintf("CREATE TABLE IF NOT EXISTS %s PARTITION OF label_versions FOR VALUES FROM ('%s') TO ('%s')",
 				pgx.Identifier{name}.Sanitize(), d.Format(time.RFC3339), d.Add(day).Format(time.RFC3339))
 			if _, err := tx.Exec(ctx, ddl); err != nil {
 				return err
