@@ -204,9 +204,11 @@ func compareEarly(tb testing.TB, where string, classes []string, got earlyMetric
 	// source: numpy multi-class Brier score via testdata/early_e2e/gen.py
 	compareEarlyValue(tb, where+": brier", got.Brier, want.Brier)
 	if want.BrierSklearn != nil {
-		// source: scikit-learn 1.2.1 brier_score_loss; ours is twice it
-		// for two classes (README.md "Early warning")
-		compareEarlyValue(tb, where+": brier vs 2 × brier_score_loss", got.Brier, ptr(2**want.BrierSklearn))
+		// source: scikit-learn 1.2.1 brier_score_loss of each class's
+		// score, summed via testdata/early_e2e/gen.py; twice one class's
+		// when the two scores sum to 1 (README.md "Early warning"), which
+		// rounded and top-only scores do not
+		compareEarlyValue(tb, where+": brier vs Σ brier_score_loss", got.Brier, want.BrierSklearn)
 	}
 	// source: numpy over the same 10 bins via testdata/early_e2e/gen.py
 	compareEarlyValue(tb, where+": calibration_error", got.CalibrationError, want.CalibrationError)
@@ -274,8 +276,6 @@ func compareEarlyValue(tb testing.TB, what string, got, want *float64) {
 func earlyClose(got, want float64) bool {
 	return nearlyEqual(got, want) || math.Abs(got-want) <= 1e-12
 }
-
-func ptr(v float64) *float64 { return &v }
 
 // checkBadScores posts the fixture's bad lines and expects each rejected
 // with its line number and exact message (README.md "Early warning"); a

@@ -11,7 +11,8 @@ see before the labels do.
 
 expected.json holds, per model and window, the figures of README.md "Early
 warning" computed independently: the Brier score with numpy and, for two
-classes, scikit-learn's brier_score_loss (ours = 2 x theirs); the reliability
+classes, scikit-learn's brier_score_loss summed over both classes (which is
+2 x theirs when the two scores sum to 1, as README says); the reliability
 bins with numpy and, for two classes, sklearn.calibration.calibration_curve
 (strategy="uniform", n_bins=10); the estimated prevalence with
 numpy.linalg.lstsq followed by README's clip-and-renormalise step; the score
@@ -169,8 +170,12 @@ def figures(sel, labels, k, ref):
         # numpy: mean over predictions of sum over classes of (s_k - y_k)^2
         f["brier"] = float(np.mean(np.sum((probs - onehot) ** 2, axis=1)))
         if k == 2:
-            # scikit-learn 1.2.1: brier_score_loss of the second class's score
-            f["brier_sklearn"] = float(brier_score_loss(onehot[:, 1], probs[:, 1]))
+            # scikit-learn 1.2.1: brier_score_loss per class, summed. When a
+            # prediction's two scores sum to 1 both terms are equal, which
+            # is README's "twice brier_score_loss"; rounded or top-only
+            # scores need both terms.
+            f["brier_sklearn"] = float(sum(brier_score_loss(onehot[:, c], probs[:, c])
+                                           for c in range(k)))
         top, correct = np.array(top), np.array(correct)
         bins = np.minimum(np.floor(top * BINS).astype(int), BINS - 1)
         ece = 0.0
