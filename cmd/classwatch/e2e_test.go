@@ -462,11 +462,18 @@ func compareFigures(tb testing.TB, where string, classes []string, got, want fig
 
 func compareValue(tb testing.TB, what string, got, want *float64) {
 	tb.Helper()
+	compareValueWith(tb, what, got, want, nearlyEqual)
+}
+
+// compareValueWith reports an optional figure that differs from want: one
+// side undefined (nil) and the other not, or both defined and not close.
+func compareValueWith(tb testing.TB, what string, got, want *float64, close func(got, want float64) bool) {
+	tb.Helper()
 	switch {
 	case got == nil && want == nil:
 	case got == nil || want == nil:
 		tb.Errorf("%s = %v, want %v", what, deref(got), deref(want))
-	case !nearlyEqual(*got, *want):
+	case !close(*got, *want):
 		tb.Errorf("%s = %v, want %v", what, *got, *want)
 	}
 }

@@ -260,13 +260,7 @@ func compareSlices(tb testing.TB, what string, got, want []float64) {
 
 func compareEarlyValue(tb testing.TB, what string, got, want *float64) {
 	tb.Helper()
-	switch {
-	case got == nil && want == nil:
-	case got == nil || want == nil:
-		tb.Errorf("%s = %v, want %v", what, deref(got), deref(want))
-	case !earlyClose(*got, *want):
-		tb.Errorf("%s = %v, want %v", what, *got, *want)
-	}
+	compareValueWith(tb, what, got, want, earlyClose)
 }
 
 // earlyClose reports whether got is within relTol of want, or within
