@@ -5,7 +5,7 @@ import (
 	"testing"
 	"time"
 
-	"github.com/classwatch/classwatch/windows/store/pgstore"
+	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 )
 
@@ -19,18 +19,7 @@ func TestMain(m *testing.M) { pgtest.Main(m) }
 func TestTakeOverPostgres(t *testing.T) {
 	url := pgtest.URL(t)
 	ctx := context.Background()
-	open := func() *pgstore.Store {
-		st, err := pgstore.Open(ctx, url, pgstore.Options{})
-		if err != nil {
-			t.Fatalf("open postgres store: %v", err)
-		}
-		t.Cleanup(func() { st.Close() })
-		if err := st.Migrate(ctx); err != nil {
-			t.Fatalf("migrate: %v", err)
-		}
-		return st
-	}
-	s1, s2 := open(), open()
+	s1, s2 := pgstoretest.Open(t, url), pgstoretest.Open(t, url)
 	if _, err := s1.EnsureModel(ctx, "card-fraud", binary, 0); err != nil {
 		t.Fatal(err)
 	}

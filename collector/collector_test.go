@@ -23,7 +23,7 @@ import (
 
 	"github.com/classwatch/classwatch/collector"
 	"github.com/classwatch/classwatch/windows/store"
-	"github.com/classwatch/classwatch/windows/store/pgstore"
+	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
 )
@@ -55,7 +55,7 @@ func sqliteBackend() backend {
 func postgresBackend() backend {
 	return backend{"postgres", func(tb testing.TB) (store.Store, func(testing.TB) store.Store) {
 		url := pgtest.URL(tb)
-		return openPostgres(tb, url), func(tb testing.TB) store.Store { return openPostgres(tb, url) }
+		return pgstoretest.Open(tb, url), func(tb testing.TB) store.Store { return pgstoretest.Open(tb, url) }
 	}}
 }
 
@@ -65,20 +65,6 @@ func eachStore(t *testing.T, test func(t *testing.T, be backend)) {
 	for _, be := range []backend{sqliteBackend(), postgresBackend()} {
 		t.Run(be.name, func(t *testing.T) { test(t, be) })
 	}
-}
-
-func openPostgres(tb testing.TB, url string) store.Store {
-	tb.Helper()
-	ctx := context.Background()
-	st, err := pgstore.Open(ctx, url, pgstore.Options{})
-	if err != nil {
-		tb.Fatalf("open postgres store: %v", err)
-	}
-	tb.Cleanup(func() { st.Close() })
-	if err := st.Migrate(ctx); err != nil {
-		tb.Fatalf("migrate: %v", err)
-	}
-	return st
 }
 
 // bundle is one test's collector on a fresh store behind a real HTTP

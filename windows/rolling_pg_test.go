@@ -6,7 +6,7 @@ import (
 
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store"
-	"github.com/classwatch/classwatch/windows/store/pgstore"
+	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 )
 
@@ -18,18 +18,7 @@ func TestMain(m *testing.M) { pgtest.Main(m) }
 func TestTrackerReplicasOnPostgres(t *testing.T) {
 	ctx := context.Background()
 	url := pgtest.URL(t)
-	open := func() *pgstore.Store {
-		s, err := pgstore.Open(ctx, url, pgstore.Options{})
-		if err != nil {
-			t.Fatal(err)
-		}
-		t.Cleanup(func() { s.Close() })
-		if err := s.Migrate(ctx); err != nil {
-			t.Fatal(err)
-		}
-		return s
-	}
-	storeA, storeB := open(), open()
+	storeA, storeB := pgstoretest.Open(t, url), pgstoretest.Open(t, url)
 	trA, trB := newSorterTracker(t, storeA), newSorterTracker(t, storeB)
 	tfA, tfB := newTraffic(t, storeA, 11), newTraffic(t, storeB, 12)
 	tfA.prefix, tfB.prefix = "east-", "west-"

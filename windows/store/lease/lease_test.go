@@ -6,7 +6,7 @@ import (
 	"path/filepath"
 	"testing"
 
-	"github.com/classwatch/classwatch/windows/store/pgstore"
+	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
 )
@@ -19,15 +19,7 @@ func TestMain(m *testing.M) { pgtest.Main(m) }
 func TestTwoReplicasPostgres(t *testing.T) {
 	url := pgtest.URL(t)
 	ctx := context.Background()
-	open := func() *pgstore.Store {
-		st, err := pgstore.Open(ctx, url, pgstore.Options{})
-		if err != nil {
-			t.Fatalf("open postgres store: %v", err)
-		}
-		t.Cleanup(func() { st.Close() })
-		return st
-	}
-	s1, s2 := open(), open()
+	s1, s2 := pgstoretest.Open(t, url), pgstoretest.Open(t, url)
 	var taken1, taken2 int
 	var lost []error
 	l1 := New(s1, "maintenance", Options{
