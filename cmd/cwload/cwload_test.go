@@ -7,6 +7,8 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"github.com/classwatch/classwatch/cmd/internal/loadkit"
 )
 
 // TestQuickRun runs the harness end to end at a small size: it builds and
@@ -27,9 +29,9 @@ func TestQuickRun(t *testing.T) {
 	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Minute)
 	defer cancel()
 	opts := defaultOptions()
-	opts.databaseURL = cmp.Or(os.Getenv("CLASSWATCH_TEST_DATABASE_URL"), defaultDatabaseURL)
-	opts.n = 20_000
-	opts.labelFraction = 0.9
+	opts.DatabaseURL = cmp.Or(os.Getenv("CLASSWATCH_TEST_DATABASE_URL"), loadkit.DefaultDatabaseURL)
+	opts.N = 20_000
+	opts.LabelFraction = 0.9
 	opts.scrapeEvents = 600
 	opts.scrapes = 3
 	var progress strings.Builder
@@ -45,7 +47,7 @@ func TestQuickRun(t *testing.T) {
 	}
 
 	p := res.Push
-	if got, want := p.HTTPPredictions.Events, opts.n; got != want {
+	if got, want := p.HTTPPredictions.Events, opts.N; got != want {
 		t.Errorf("predictions pushed: got %d, want %d", got, want)
 	}
 	if got, want := p.HTTPLabels.Events, p.StoreLabels.Events; got != want {
@@ -56,7 +58,7 @@ func TestQuickRun(t *testing.T) {
 	if got := p.HTTPLabels.Events; got < 17_000 || got > 19_000 {
 		t.Errorf("labels: got %d, want about 18,000", got)
 	}
-	if got, want := p.WindowsChecked, opts.models*len(pushWindows()); got != want || !p.Checked {
+	if got, want := p.WindowsChecked, opts.Models*len(pushWindows()); got != want || !p.Checked {
 		t.Errorf("windows checked: got %d (all held: %v), want %d", got, p.Checked, want)
 	}
 	if p.RSSEnd <= 0 || p.RSSHWM < p.RSSEnd {

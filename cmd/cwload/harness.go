@@ -12,24 +12,14 @@ import (
 	"strings"
 	"time"
 
+	"github.com/classwatch/classwatch/cmd/internal/loadkit"
 	"github.com/classwatch/classwatch/windows"
 )
 
-// defaultDatabaseURL is the local server the harness uses unless told.
-const defaultDatabaseURL = "postgres://postgres@127.0.0.1:5432/postgres?sslmode=disable"
-
 // options configure a run.
 type options struct {
-	databaseURL string
-	// binary is the daemon to run; empty builds it.
-	binary        string
-	n             int
-	labelFraction float64
-	clients       int
-	batch         int
-	models        int
-	seed          uint64
-	span          time.Duration
+	loadkit.Common
+	span time.Duration
 
 	push          bool
 	scrape        bool
@@ -37,19 +27,14 @@ type options struct {
 	scrapeClasses int
 	scrapeEvents  int
 	scrapes       int
-
-	keep bool
 }
 
 func defaultOptions() options {
 	return options{
-		databaseURL:   defaultDatabaseURL,
-		n:             1_000_000,
-		labelFraction: 1,
-		clients:       4,
-		batch:         5000,
-		models:        4,
-		seed:          1,
+		Common: loadkit.Common{
+			DatabaseURL: loadkit.DefaultDatabaseURL, N: 1_000_000, LabelFraction: 1,
+			Clients: 4, Batch: 5000, Models: 4, Seed: 1,
+		},
 		span:          12 * time.Hour,
 		push:          true,
 		scrape:        true,
@@ -63,19 +48,19 @@ func defaultOptions() options {
 func (o options) validate() error {
 	var errs []error
 	bad := func(format string, args ...any) { errs = append(errs, fmt.Errorf(format, args...)) }
-	if o.models < 1 || o.models > 99 {
+	if o.Models < 1 || o.Models > 99 {
 		bad("--models must be 1 to 99")
 	}
-	if o.n < 1 || (o.models > 0 && o.n%o.models != 0) {
-		bad("-n must be a positive multiple of --models (%d)", o.models)
+	if o.N < 1 || (o.Models > 0 && o.N%o.Models != 0) {
+		bad("-n must be a positive multiple of --models (%d)", o.Models)
 	}
-	if !(o.labelFraction >= 0 && o.labelFraction <= 1) {
+	if !(o.LabelFraction >= 0 && o.LabelFraction <= 1) {
 		bad("--label-fraction must be between 0 and 1")
 	}
-	if o.clients < 1 || o.clients > 64 {
+	if o.Clients < 1 || o.Clients > 64 {
 		bad("--clients must be 1 to 64")
 	}
-	if o.batch < 1 {
+	if o.Batch < 1 {
 		bad("--batch must be positive")
 	}
 	if o.span < 10*time.Minute || o.span > 30*24*time.Hour {
@@ -124,12 +109,12 @@ type harness struct {
 
 // runHarness runs the benchmarks opts asks for and returns their figures;
 // on failure it returns what was measured so far with the error. Databases,
-// the temporary directory and daemons are cleaned up unless opts.keep.
+// the temporary directory and daemons are cleaned up unless opts.Keep.
 func runHarness(ctx context.Context, opts options, progress io.Writer) (res *results, err error) {
 	if err := opts.validate(); err != nil {
 		return nil, err
 	}
-	srv, err := newServer(opts.databaseURL)
+	srv, err := newServer(opts.DatabaseURL)
 	if err != nil {
 		return nil, err
 	}
@@ -145,9 +130,9 @@ func runHarness(ctx context.Context, opts options, progress io.Writer) (res *res
 	if err != nil {
 		return res, fmt.Errorf("create temporary directory: %w", err)
 	}
-	h := &harness{opts: opts, progress: progress, srv: srv, dir: dir, binary: opts.binary}
+	h := &harness{opts: opts, progress: progress, srv: srv, dir: dir, binary: opts.Binary}
 	defer func() {
-		if opts.keep {
+		if opts.Keep {
 			fmt.Fprintf(progress, "kept: databases %s, directory %s\n", strings.Join(srv.created, " "), dir)
 			return
 		}
@@ -156,7 +141,7 @@ func runHarness(ctx context.Context, opts options, progress io.Writer) (res *res
 
 	if h.binary == "" {
 		fmt.Fprintln(progress, "building the daemon")
-		if h.binary, err = buildDaemon(ctx, dir); err != nil {
+		if h.binary, err = loadkit.BuildDaemon(ctx, dir); err != nil {
 			return res, err
 		}
 	}
@@ -233,7 +218,7 @@ func (h *harness) writeConfig(name string, sc *scenario, ws []windows.Window) (s
 	for _, m := range sc.models {
 		fmt.Fprintf(&b, "  - name: %s\n    classes: [%s]\n", m, strings.Join(sc.classes, ", "))
 	}
-	fmt.Fprintf(&b, "ingest:\n  max_body_bytes: 256MiB\n  max_in_flight: %d\n  queue_wait: 2m\n  max_future: 0\n", h.opts.clients)
+	fmt.Fprintf(&b, "ingest:\n  max_body_bytes: 256MiB\n  max_in_flight: %d\n  queue_wait: 2m\n  max_future: 0\n", h.opts.Clients)
 	path := filepath.Join(h.dir, name+".yaml")
 	if err := os.WriteFile(path, []byte(b.String()), 0o600); err != nil {
 		return "", fmt.Errorf("write config: %w", err)
@@ -243,7 +228,7 @@ func (h *harness) writeConfig(name string, sc *scenario, ws []windows.Window) (s
 
 // startDaemon creates a database, writes the config and starts a daemon on
 // them.
-func (h *harness) startDaemon(ctx context.Context, name string, sc *scenario, ws []windows.Window) (*daemonProc, error) {
+func (h *harness) startDaemon(ctx context.Context, name string, sc *scenario, ws []windows.Window) (*loadkit.Daemon, error) {
 	dbURL, err := h.srv.create(ctx)
 	if err != nil {
 		return nil, err
@@ -253,5 +238,6 @@ func (h *harness) startDaemon(ctx context.Context, name string, sc *scenario, ws
 		return nil, err
 	}
 	fmt.Fprintf(h.progress, "starting the daemon (%s)\n", name)
-	return startDaemon(ctx, h.binary, cfg, dbURL, filepath.Join(h.dir, name+".log"))
+	// The --database flag wins over CLASSWATCH_DATABASE_URL in the environment.
+	return loadkit.StartDaemon(ctx, h.binary, cfg, filepath.Join(h.dir, name+".log"), "--database", dbURL)
 }

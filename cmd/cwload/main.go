@@ -34,27 +34,14 @@ package main
 
 import (
 	"context"
-	"errors"
 	"flag"
 	"fmt"
 	"io"
-	"os"
-	"os/signal"
-	"syscall"
+
+	"github.com/classwatch/classwatch/cmd/internal/loadkit"
 )
 
-func main() {
-	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
-	err := run(ctx, os.Args[1:], os.Stdout, os.Stderr)
-	stop()
-	switch {
-	case errors.Is(err, flag.ErrHelp):
-		os.Exit(2)
-	case err != nil:
-		fmt.Fprintln(os.Stderr, "cwload:", err)
-		os.Exit(1)
-	}
-}
+func main() { loadkit.Main("cwload", run) }
 
 // run parses the flags, runs the harness and prints its report to stdout.
 // Progress lines go to stderr.
@@ -79,14 +66,7 @@ func parseFlags(args []string, stderr io.Writer) (options, error) {
 		fmt.Fprintln(fs.Output(), "usage: cwload [flags]   (see the package doc: go doc ./cmd/cwload)")
 		fs.PrintDefaults()
 	}
-	fs.StringVar(&o.databaseURL, "database-url", o.databaseURL, "PostgreSQL `URL` (loopback or Unix socket) on which cwload_* databases are created and dropped")
-	fs.StringVar(&o.binary, "binary", "", "classwatch `binary` to run; empty builds ./cmd/classwatch into a temporary directory")
-	fs.IntVar(&o.n, "n", o.n, "predictions to push")
-	fs.Float64Var(&o.labelFraction, "label-fraction", o.labelFraction, "fraction of the predictions that get a label (0 to 1)")
-	fs.IntVar(&o.clients, "clients", o.clients, "concurrent clients (HTTP) and goroutines (store)")
-	fs.IntVar(&o.batch, "batch", o.batch, "lines per batch (HTTP request and store call)")
-	fs.IntVar(&o.models, "models", o.models, "models (loading docks) the events are spread over; a batch holds one model")
-	fs.Uint64Var(&o.seed, "seed", o.seed, "seed of the event generator")
+	o.Register(fs, "cwload")
 	fs.DurationVar(&o.span, "span", o.span, "prediction times are spread over this long, ending a few minutes ago")
 	fs.BoolVar(&o.push, "push", o.push, "run the ingest benchmark")
 	fs.BoolVar(&o.scrape, "scrape", o.scrape, "run the /metrics scrape benchmark")
@@ -94,7 +74,6 @@ func parseFlags(args []string, stderr io.Writer) (options, error) {
 	fs.IntVar(&o.scrapeClasses, "scrape-classes", o.scrapeClasses, "classes per model of the scrape benchmark (at most 12)")
 	fs.IntVar(&o.scrapeEvents, "scrape-events", o.scrapeEvents, "predictions (all labeled) per model of the scrape benchmark")
 	fs.IntVar(&o.scrapes, "scrapes", o.scrapes, "timed scrapes per variant")
-	fs.BoolVar(&o.keep, "keep", false, "keep the databases and the temporary directory (daemon logs) after the run")
 	if err := fs.Parse(args); err != nil {
 		return o, err
 	}

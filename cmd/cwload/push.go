@@ -9,6 +9,7 @@ import (
 	"slices"
 	"time"
 
+	"github.com/classwatch/classwatch/cmd/internal/loadkit"
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/api"
 	"github.com/classwatch/classwatch/windows/store"
@@ -52,14 +53,14 @@ func (h *harness) runPush(ctx context.Context) (_ *pushResults, err error) {
 	// Prediction times end a few minutes ago, so no event lies ahead of
 	// the daemon's clock whatever its limits.
 	end := time.Now().Add(-5 * time.Minute)
-	sc := newScenario(o.seed, "dock", o.models, pushClasses, o.n/o.models, end, []zone{{share: 1, from: o.span, to: 0}}, o.labelFraction)
-	predRefs, labelRefs := sc.predictionBatches(o.batch), sc.labelBatches(o.batch)
-	res := &pushResults{Predictions: o.n}
+	sc := newScenario(o.Seed, "dock", o.Models, pushClasses, o.N/o.Models, end, []zone{{share: 1, from: o.span, to: 0}}, o.LabelFraction)
+	predRefs, labelRefs := sc.predictionBatches(o.Batch), sc.labelBatches(o.Batch)
+	res := &pushResults{Predictions: o.N}
 	for _, b := range labelRefs {
 		res.Labels += len(b.list)
 	}
 	fmt.Fprintf(h.progress, "ingest benchmark: %d predictions and %d labels of %d models, batches of %d lines, %d clients\n",
-		res.Predictions, res.Labels, o.models, o.batch, o.clients)
+		res.Predictions, res.Labels, o.Models, o.Batch, o.Clients)
 
 	storeURL, err := h.srv.create(ctx)
 	if err != nil {
@@ -85,16 +86,16 @@ func (h *harness) runPush(ctx context.Context) (_ *pushResults, err error) {
 	}
 	defer func() {
 		if err != nil {
-			err = errors.Join(err, d.logTail())
+			err = errors.Join(err, d.LogTail())
 		}
-		err = errors.Join(err, d.stop())
+		err = errors.Join(err, d.Stop())
 	}()
-	rss := sampleRSS(d.pid, 250*time.Millisecond)
+	rss := sampleRSS(d.PID, 250*time.Millisecond)
 	defer func() { err = errors.Join(err, rss.close()) }()
-	if res.RSSReady, _, err = memory(d.pid); err != nil {
+	if res.RSSReady, _, err = memory(d.PID); err != nil {
 		return res, err
 	}
-	cl := newClient(d.base, o.clients)
+	cl := newClient(d.Base, o.Clients)
 	defer cl.close()
 	lines := func(refs []batchRef) func(int) int { return func(i int) int { return len(refs[i].list) } }
 
@@ -107,7 +108,7 @@ func (h *harness) runPush(ctx context.Context) (_ *pushResults, err error) {
 		}
 	}
 	runtime.GC()
-	res.StorePredictions, err = runPhase(ctx, "store predictions", len(predRefs), o.clients, lines(predRefs), meter{srv: h.srv},
+	res.StorePredictions, err = runPhase(ctx, "store predictions", len(predRefs), o.Clients, lines(predRefs), meter{srv: h.srv},
 		func(ctx context.Context, i int) (time.Duration, int, error) {
 			start := time.Now()
 			r, err := st.IngestPredictions(ctx, storePreds[i], time.Now())
@@ -147,7 +148,7 @@ func (h *harness) runPush(ctx context.Context) (_ *pushResults, err error) {
 		}
 	}
 	runtime.GC()
-	res.StoreLabels, err = runPhase(ctx, "store labels", len(labelRefs), o.clients, lines(labelRefs), meter{srv: h.srv},
+	res.StoreLabels, err = runPhase(ctx, "store labels", len(labelRefs), o.Clients, lines(labelRefs), meter{srv: h.srv},
 		func(ctx context.Context, i int) (time.Duration, int, error) {
 			start := time.Now()
 			r, err := st.IngestLabels(ctx, storeLabels[i], time.Now())
@@ -186,16 +187,16 @@ func (h *harness) runPush(ctx context.Context) (_ *pushResults, err error) {
 		return res, err
 	}
 	res.Checked = true
-	if res.RSSEnd, res.RSSHWM, err = memory(d.pid); err != nil {
+	if res.RSSEnd, res.RSSHWM, err = memory(d.PID); err != nil {
 		return res, err
 	}
 	return res, nil
 }
 
 // httpPhase pushes bodies to path with the harness's clients.
-func (h *harness) httpPhase(ctx context.Context, name string, cl *client, d *daemonProc, rss *rssSampler, path string, bodies [][]byte, lines func(int) int) (phase, error) {
+func (h *harness) httpPhase(ctx context.Context, name string, cl *client, d *loadkit.Daemon, rss *rssSampler, path string, bodies [][]byte, lines func(int) int) (phase, error) {
 	start := time.Now()
-	ph, err := runPhase(ctx, name, len(bodies), h.opts.clients, lines, meter{pid: d.pid, srv: h.srv},
+	ph, err := runPhase(ctx, name, len(bodies), h.opts.Clients, lines, meter{pid: d.PID, srv: h.srv},
 		func(ctx context.Context, i int) (time.Duration, int, error) {
 			return cl.push(ctx, path, bodies[i], lines(i))
 		}, h.progress)

@@ -27,7 +27,7 @@ func (r *results) print(w io.Writer) {
 	fmt.Fprintln(w)
 	if p := r.Push; p != nil {
 		fmt.Fprintf(w, "\ningest: %d predictions + %d labels, %d models × %d classes, batches of %d lines, %d concurrent clients, seed %d\n",
-			p.Predictions, p.Labels, o.models, pushClasses, o.batch, o.clients, o.seed)
+			p.Predictions, p.Labels, o.Models, pushClasses, o.Batch, o.Clients, o.Seed)
 		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
 		fmt.Fprintln(tw, "phase\tevents\twall\tevents/s\tp50\tp99\tmax\t503s\t|\thost\tdaemon\tharness\tpostgres\tother\tload\t|\tCPU ms/1k events\t")
 		for _, ph := range []phase{p.StorePredictions, p.HTTPPredictions, p.StoreLabels, p.HTTPLabels} {
@@ -54,7 +54,7 @@ func (r *results) print(w io.Writer) {
 		fmt.Fprintf(w, "daemon RSS: %s ready, %s peak sampled while pushing, %s at the end, %s VmHWM\n",
 			mib(p.RSSReady), mib(p.RSSPeak), mib(p.RSSEnd), mib(p.RSSHWM))
 		if p.Checked {
-			fmt.Fprintf(w, "check: the counts of %d models and %d window figures (bounds, counts, matrix) match the events sent\n", o.models, p.WindowsChecked)
+			fmt.Fprintf(w, "check: the counts of %d models and %d window figures (bounds, counts, matrix) match the events sent\n", o.Models, p.WindowsChecked)
 		}
 	}
 	if s := r.Scrape; s != nil {

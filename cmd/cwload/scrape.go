@@ -79,7 +79,7 @@ func (h *harness) runScrape(ctx context.Context) (_ *scrapeResults, err error) {
 		{share: 0.30, from: 50 * time.Minute, to: 0},
 	}
 	end := time.Now().Add(-5 * time.Minute)
-	sc := newScenario(o.seed+1, "sorter", o.scrapeModels, o.scrapeClasses, o.scrapeEvents, end, zones, 1)
+	sc := newScenario(o.Seed+1, "sorter", o.scrapeModels, o.scrapeClasses, o.scrapeEvents, end, zones, 1)
 	res := &scrapeResults{Models: o.scrapeModels, Classes: o.scrapeClasses, Windows: len(ws)}
 	fmt.Fprintf(h.progress, "scrape benchmark: %d models × %d classes × %d windows\n", res.Models, res.Classes, res.Windows)
 
@@ -89,19 +89,19 @@ func (h *harness) runScrape(ctx context.Context) (_ *scrapeResults, err error) {
 	}
 	defer func() {
 		if err != nil {
-			err = errors.Join(err, d.logTail())
+			err = errors.Join(err, d.LogTail())
 		}
-		err = errors.Join(err, d.stop())
+		err = errors.Join(err, d.Stop())
 	}()
-	rss := sampleRSS(d.pid, time.Second)
+	rss := sampleRSS(d.PID, time.Second)
 	defer func() { err = errors.Join(err, rss.close()) }()
-	cl := newClient(d.base, o.clients)
+	cl := newClient(d.Base, o.Clients)
 	defer cl.close()
 
 	for _, kind := range []string{"predictions", "labels"} {
-		refs := sc.predictionBatches(o.batch)
+		refs := sc.predictionBatches(o.Batch)
 		if kind == "labels" {
-			refs = sc.labelBatches(o.batch)
+			refs = sc.labelBatches(o.Batch)
 		}
 		bodies := make([][]byte, len(refs))
 		for i, b := range refs {
@@ -127,7 +127,7 @@ func (h *harness) runScrape(ctx context.Context) (_ *scrapeResults, err error) {
 		{Name: "text", Accept: "text/plain;version=0.0.4"},
 		{Name: "prometheus", Accept: prometheusAccept, AcceptEncoding: "gzip"},
 	} {
-		v, err := h.timeScrapes(ctx, cl, d.pid, v)
+		v, err := h.timeScrapes(ctx, cl, d.PID, v)
 		if err != nil {
 			return res, err
 		}
@@ -138,7 +138,7 @@ func (h *harness) runScrape(ctx context.Context) (_ *scrapeResults, err error) {
 			return res, fmt.Errorf("scrape %s: %d classwatch_confusion samples, want %d (every cell of every window)", v.Name, v.Confusion, want)
 		}
 	}
-	res.RSS, _, err = memory(d.pid)
+	res.RSS, _, err = memory(d.PID)
 	return res, err
 }
 

@@ -16,6 +16,8 @@ import (
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
+
+	"github.com/classwatch/classwatch/cmd/internal/loadkit"
 )
 
 // The stream the harness's daemon consumes.
@@ -31,7 +33,7 @@ type harness struct {
 	o        options
 	progress io.Writer
 	t        traffic
-	d        *daemon
+	d        *loadkit.Daemon
 	js       jetstream.JetStream
 	dbURL    string
 }
@@ -47,17 +49,17 @@ func runHarness(ctx context.Context, o options, progress io.Writer) (rep *report
 		for i := len(cleanups) - 1; i >= 0; i-- {
 			err = errors.Join(err, cleanups[i]())
 		}
-		if o.keep {
+		if o.Keep {
 			fmt.Fprintln(progress, "kept", dir)
 		} else {
 			err = errors.Join(err, os.RemoveAll(dir))
 		}
 	}()
-	dbURL, drop, err := createDatabase(ctx, o.databaseURL)
+	dbURL, drop, err := createDatabase(ctx, o.DatabaseURL)
 	if err != nil {
 		return nil, err
 	}
-	if !o.keep {
+	if !o.Keep {
 		cleanups = append(cleanups, drop)
 	}
 	natsURL := o.natsURL
@@ -68,10 +70,10 @@ func runHarness(ctx context.Context, o options, progress io.Writer) (rep *report
 		}
 		cleanups = append(cleanups, func() error { stop(); return nil })
 	}
-	binary := o.binary
+	binary := o.Binary
 	if binary == "" {
 		fmt.Fprintln(progress, "building the daemon")
-		if binary, err = buildDaemon(ctx, dir); err != nil {
+		if binary, err = loadkit.BuildDaemon(ctx, dir); err != nil {
 			return nil, err
 		}
 	}
@@ -80,13 +82,14 @@ func runHarness(ctx context.Context, o options, progress io.Writer) (rep *report
 		return nil, err
 	}
 	h := &harness{o: o, progress: progress, dbURL: dbURL, t: traffic{
-		n: o.n, models: o.models, labeled: int(o.labelFraction * float64(o.n)), seed: o.seed,
+		n: o.N, models: o.Models, labeled: int(o.LabelFraction * float64(o.N)), seed: o.Seed,
 		end: time.Now().Add(-10 * time.Minute), span: 12 * time.Hour,
 	}}
-	if h.d, err = startDaemon(ctx, binary, cfg, filepath.Join(dir, "daemon.log")); err != nil {
+	// /readyz includes the stream source.
+	if h.d, err = loadkit.StartDaemon(ctx, binary, cfg, filepath.Join(dir, "daemon.log")); err != nil {
 		return nil, err
 	}
-	cleanups = append(cleanups, func() error { h.d.stop(); return nil })
+	cleanups = append(cleanups, func() error { _ = h.d.Stop(); return nil })
 	nc, err := nats.Connect(natsURL)
 	if err != nil {
 		return nil, fmt.Errorf("connect to nats: %w", err)
@@ -104,13 +107,13 @@ func writeConfig(dir string, o options, dbURL, natsURL string) (string, error) {
 	var b strings.Builder
 	fmt.Fprintf(&b, "data_dir: %s\ndatabase: %q\nmodels:\n", filepath.Join(dir, "data"), dbURL)
 	for _, set := range []string{"h", "s", "o", "w"} {
-		for m := range o.models {
+		for m := range o.Models {
 			fmt.Fprintf(&b, "  - {name: %s-dock-%d, classes: [%s]}\n", set, m+1, strings.Join(parcelClasses, ", "))
 		}
 	}
-	fmt.Fprintf(&b, "ingest: {max_body_bytes: 64MiB, max_in_flight: %d, queue_wait: 2m, max_future: 0}\n", o.clients)
+	fmt.Fprintf(&b, "ingest: {max_body_bytes: 64MiB, max_in_flight: %d, queue_wait: 2m, max_future: 0}\n", o.Clients)
 	fmt.Fprintf(&b, "sources:\n  - {kind: nats, url: %q, stream: %s, predictions_subject: %s, labels_subject: %s, durable: %s, workers: %d, fetch_messages: %d, ack_wait: 5m, nak_delay: 1s}\n",
-		natsURL, streamName, predSubject, labSubject, durable, o.clients, 2*o.clients)
+		natsURL, streamName, predSubject, labSubject, durable, o.Clients, 2*o.Clients)
 	path := filepath.Join(dir, "classwatch.yml")
 	return path, os.WriteFile(path, []byte(b.String()), 0o600)
 }
@@ -118,10 +121,10 @@ func writeConfig(dir string, o options, dbURL, natsURL string) (string, error) {
 // phases runs the four measured phases, the check and the overload.
 func (h *harness) phases(ctx context.Context) (*report, error) {
 	rep := &report{opts: h.o}
-	preds, labs := h.t.batches(h.o.batch, false), h.t.batches(h.o.batch, true)
+	preds, labs := h.t.batches(h.o.Batch, false), h.t.batches(h.o.Batch, true)
 	rep.predictions, rep.labels = lines(preds), lines(labs)
 	fmt.Fprintf(h.progress, "%d predictions and %d labels per path, %d-line batches, %d clients\n",
-		rep.predictions, rep.labels, h.o.batch, h.o.clients)
+		rep.predictions, rep.labels, h.o.Batch, h.o.Clients)
 	if err := h.warmUp(ctx); err != nil {
 		return rep, err
 	}
@@ -152,7 +155,7 @@ func (h *harness) phases(ctx context.Context) (*report, error) {
 
 // counters reads the daemon's stream counters, summed over labels.
 func (h *harness) counters(ctx context.Context) (map[string]float64, error) {
-	req, err := http.NewRequestWithContext(ctx, http.MethodGet, h.d.base+"/metrics", nil)
+	req, err := http.NewRequestWithContext(ctx, http.MethodGet, h.d.Base+"/metrics", nil)
 	if err != nil {
 		return nil, err
 	}
@@ -193,7 +196,7 @@ func (h *harness) counters(ctx context.Context) (map[string]float64, error) {
 func (h *harness) warmUp(ctx context.Context) error {
 	fmt.Fprintln(h.progress, "warming up")
 	w := h.t
-	w.n, w.labeled = 200*h.o.models, 200*h.o.models
+	w.n, w.labeled = 200*h.o.Models, 200*h.o.Models
 	for _, labels := range []bool{false, true} {
 		bs := w.batches(100, labels)
 		half := len(bs) / 2
@@ -228,10 +231,10 @@ func (p phase) rate() float64 { return float64(p.lines) / p.took.Seconds() }
 func (h *harness) pushHTTP(ctx context.Context, path string, bs []batch, labels bool) (phase, error) {
 	fmt.Fprintf(h.progress, "HTTP %s\n", path)
 	work := make(chan batch)
-	errs := make(chan error, h.o.clients)
+	errs := make(chan error, h.o.Clients)
 	start := time.Now()
 	var wg sync.WaitGroup
-	for range h.o.clients {
+	for range h.o.Clients {
 		wg.Go(func() {
 			for b := range work {
 				if err := h.post(ctx, path, h.t.body("h", b, labels), b.count); err != nil {
@@ -262,7 +265,7 @@ func (h *harness) pushHTTP(ctx context.Context, path string, bs []batch, labels 
 // post sends one body until it is answered 200 with every line counted.
 func (h *harness) post(ctx context.Context, path string, body []byte, count int) error {
 	for {
-		req, err := http.NewRequestWithContext(ctx, http.MethodPost, h.d.base+path, bytes.NewReader(body))
+		req, err := http.NewRequestWithContext(ctx, http.MethodPost, h.d.Base+path, bytes.NewReader(body))
 		if err != nil {
 			return err
 		}

@@ -1,7 +1,6 @@
 package main
 
 import (
-	"bufio"
 	"context"
 	"encoding/json"
 	"errors"
@@ -15,7 +14,6 @@ import (
 	"os/exec"
 	"path/filepath"
 	"strconv"
-	"strings"
 	"syscall"
 	"time"
 
@@ -103,80 +101,6 @@ func startNATS(ctx context.Context, dir string) (string, func(), error) {
 	}
 	stop()
 	return "", nil, errors.New("nats-server did not listen within 10s")
-}
-
-// buildDaemon builds ./cmd/classwatch into dir.
-func buildDaemon(ctx context.Context, dir string) (string, error) {
-	out := filepath.Join(dir, "classwatch")
-	cmd := exec.CommandContext(ctx, "go", "build", "-o", out, "github.com/classwatch/classwatch/cmd/classwatch")
-	if msg, err := cmd.CombinedOutput(); err != nil {
-		return "", fmt.Errorf("build daemon (or pass --binary): %w\n%s", err, msg)
-	}
-	return out, nil
-}
-
-// daemon is "classwatch serve" as a child process.
-type daemon struct {
-	cmd  *exec.Cmd
-	base string
-	done chan error
-}
-
-// startDaemon runs the daemon on a free port and waits for /readyz (which
-// includes the stream source).
-func startDaemon(ctx context.Context, binary, config, logPath string) (*daemon, error) {
-	logf, err := os.Create(logPath)
-	if err != nil {
-		return nil, err
-	}
-	cmd := exec.Command(binary, "serve", "--config", config, "--listen", "127.0.0.1:0")
-	cmd.Stderr = logf
-	cmd.SysProcAttr = &syscall.SysProcAttr{Pdeathsig: syscall.SIGTERM}
-	stdout, err := cmd.StdoutPipe()
-	if err != nil {
-		return nil, err
-	}
-	if err := cmd.Start(); err != nil {
-		return nil, fmt.Errorf("start daemon: %w", err)
-	}
-	d := &daemon{cmd: cmd, done: make(chan error, 1)}
-	addr := make(chan string, 1)
-	go func() {
-		sc := bufio.NewScanner(stdout)
-		for sc.Scan() {
-			if a, ok := strings.CutPrefix(sc.Text(), "classwatch listening on "); ok {
-				addr <- strings.TrimSuffix(a, "/")
-			}
-		}
-		d.done <- cmd.Wait()
-		logf.Close()
-	}()
-	select {
-	case d.base = <-addr:
-	case err := <-d.done:
-		return nil, fmt.Errorf("daemon exited at start (%v); see %s", err, logPath)
-	case <-time.After(time.Minute):
-		d.stop()
-		return nil, fmt.Errorf("daemon did not start within a minute; see %s", logPath)
-	}
-	for deadline := time.Now().Add(time.Minute); time.Now().Before(deadline); time.Sleep(50 * time.Millisecond) {
-		if status, _ := get(ctx, d.base+"/readyz", nil); status == http.StatusOK {
-			return d, nil
-		}
-	}
-	d.stop()
-	return nil, fmt.Errorf("daemon not ready within a minute; see %s", logPath)
-}
-
-// stop sends SIGTERM and waits for the exit.
-func (d *daemon) stop() {
-	_ = d.cmd.Process.Signal(syscall.SIGTERM)
-	select {
-	case <-d.done:
-	case <-time.After(30 * time.Second):
-		_ = d.cmd.Process.Kill()
-		<-d.done
-	}
 }
 
 // get fetches a URL and decodes JSON into v when v is not nil.

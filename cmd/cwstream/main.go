@@ -31,70 +31,43 @@ package main
 
 import (
 	"context"
-	"errors"
 	"flag"
 	"fmt"
 	"io"
-	"os"
-	"os/signal"
-	"syscall"
 	"time"
+
+	"github.com/classwatch/classwatch/cmd/internal/loadkit"
 )
 
-func main() {
-	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
-	err := run(ctx, os.Args[1:], os.Stdout, os.Stderr)
-	stop()
-	switch {
-	case errors.Is(err, flag.ErrHelp):
-		os.Exit(2)
-	case err != nil:
-		fmt.Fprintln(os.Stderr, "cwstream:", err)
-		os.Exit(1)
-	}
-}
+func main() { loadkit.Main("cwstream", run) }
 
 // options configure a run.
 type options struct {
-	databaseURL   string
-	natsURL       string
-	binary        string
-	n             int
-	labelFraction float64
-	batch         int
-	clients       int
-	models        int
-	seed          uint64
-	overload      time.Duration
-	keep          bool
+	loadkit.Common
+	natsURL  string
+	overload time.Duration
 }
 
 func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	o := options{
-		databaseURL: "postgres://postgres@127.0.0.1:5432/postgres?sslmode=disable",
-		n:           1_000_000, labelFraction: 0.9, batch: 2000, clients: 4, models: 4, seed: 1,
+		Common: loadkit.Common{
+			DatabaseURL: loadkit.DefaultDatabaseURL,
+			N:           1_000_000, LabelFraction: 0.9, Batch: 2000, Clients: 4, Models: 4, Seed: 1,
+		},
 		overload: 20 * time.Second,
 	}
 	fs := flag.NewFlagSet("cwstream", flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	fs.StringVar(&o.databaseURL, "database-url", o.databaseURL, "PostgreSQL `URL` on which a cwstream_* database is created and dropped")
+	o.Register(fs, "cwstream")
 	fs.StringVar(&o.natsURL, "nats-url", "", "NATS `URL` with JetStream; empty starts a private nats-server")
-	fs.StringVar(&o.binary, "binary", "", "classwatch `binary`; empty builds ./cmd/classwatch")
-	fs.IntVar(&o.n, "n", o.n, "predictions per path")
-	fs.Float64Var(&o.labelFraction, "label-fraction", o.labelFraction, "fraction of the predictions that get a label")
-	fs.IntVar(&o.batch, "batch", o.batch, "lines per HTTP body and per message")
-	fs.IntVar(&o.clients, "clients", o.clients, "HTTP clients, publishers, and the daemon's max_in_flight and workers")
-	fs.IntVar(&o.models, "models", o.models, "models per path")
-	fs.Uint64Var(&o.seed, "seed", o.seed, "seed of the event generator")
 	fs.DurationVar(&o.overload, "overload", o.overload, "how long to publish at twice the measured stream rate; 0 skips it")
-	fs.BoolVar(&o.keep, "keep", false, "keep the database and the temporary directory")
 	if err := fs.Parse(args); err != nil {
 		return err
 	}
 	switch {
-	case o.n < o.models || o.n%o.models != 0 || o.models < 1:
+	case o.N < o.Models || o.N%o.Models != 0 || o.Models < 1:
 		return fmt.Errorf("-n must be a positive multiple of --models")
-	case o.batch < 1 || o.clients < 1 || o.labelFraction < 0 || o.labelFraction > 1:
+	case o.Batch < 1 || o.Clients < 1 || o.LabelFraction < 0 || o.LabelFraction > 1:
 		return fmt.Errorf("--batch and --clients must be positive, --label-fraction in [0, 1]")
 	}
 	rep, err := runHarness(ctx, o, stderr)

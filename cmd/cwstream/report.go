@@ -23,7 +23,7 @@ type report struct {
 
 func (r *report) print(w io.Writer) {
 	fmt.Fprintf(w, "cwstream: %d predictions + %d labels per path, %d-line batches, %d clients/workers, %d CPUs\n",
-		r.predictions, r.labels, r.opts.batch, r.opts.clients, runtime.NumCPU())
+		r.predictions, r.labels, r.opts.Batch, r.opts.Clients, runtime.NumCPU())
 	fmt.Fprintf(w, "%-20s %10s %9s %11s %10s %9s\n", "phase", "lines", "seconds", "lines/s", "publish s", "max lag")
 	row := func(name string, p phase) {
 		if p.took == 0 {

@@ -44,10 +44,10 @@ func (h *harness) publish(ctx context.Context, subject string, body []byte) erro
 func (h *harness) pushStream(ctx context.Context, subject, set string, bs []batch, labels bool) (phase, error) {
 	fmt.Fprintf(h.progress, "stream %s\n", subject)
 	work := make(chan batch)
-	errs := make(chan error, h.o.clients)
+	errs := make(chan error, h.o.Clients)
 	start := time.Now()
 	var wg sync.WaitGroup
-	for range h.o.clients {
+	for range h.o.Clients {
 		wg.Go(func() {
 			for b := range work {
 				if err := h.publish(ctx, subject, h.t.body(set, b, labels)); err != nil {
@@ -103,7 +103,7 @@ func (h *harness) check(ctx context.Context) (bool, error) {
 			Predictions, Labeled int64
 		}
 	}
-	if _, err := get(ctx, h.d.base+"/v1/models", &body); err != nil {
+	if _, err := get(ctx, h.d.Base+"/v1/models", &body); err != nil {
 		return false, fmt.Errorf("GET /v1/models: %w", err)
 	}
 	counts := map[string][2]int64{}
@@ -112,7 +112,7 @@ func (h *harness) check(ctx context.Context) (bool, error) {
 	}
 	var errs []error
 	var predictions, labeled int64
-	for m := range h.o.models {
+	for m := range h.o.Models {
 		hc, sc := counts[fmt.Sprintf("h-dock-%d", m+1)], counts[fmt.Sprintf("s-dock-%d", m+1)]
 		if hc != sc {
 			errs = append(errs, fmt.Errorf("dock %d: HTTP %v, stream %v (predictions, labeled)", m+1, hc, sc))
@@ -120,8 +120,8 @@ func (h *harness) check(ctx context.Context) (bool, error) {
 		predictions += sc[0]
 		labeled += sc[1]
 	}
-	if predictions != int64(h.o.n) || labeled != int64(h.t.labeled) {
-		errs = append(errs, fmt.Errorf("stream set holds %d predictions, %d labeled; want %d, %d", predictions, labeled, h.o.n, h.t.labeled))
+	if predictions != int64(h.o.N) || labeled != int64(h.t.labeled) {
+		errs = append(errs, fmt.Errorf("stream set holds %d predictions, %d labeled; want %d, %d", predictions, labeled, h.o.N, h.t.labeled))
 	}
 	return len(errs) == 0, errors.Join(errs...)
 }
@@ -141,9 +141,9 @@ type overloadResult struct {
 func (h *harness) overload(ctx context.Context, rate float64) (*overloadResult, error) {
 	res := &overloadResult{targetLines: 2 * rate}
 	fmt.Fprintf(h.progress, "overload: %.0f lines/s for %s\n", res.targetLines, h.o.overload)
-	per := time.Duration(float64(time.Second) * float64(h.o.batch) / res.targetLines)
-	big := traffic{n: int(res.targetLines*h.o.overload.Seconds()) + h.o.batch*h.o.models, models: h.o.models, seed: h.o.seed + 1, end: h.t.end, span: h.t.span}
-	bs := big.batches(h.o.batch, false)
+	per := time.Duration(float64(time.Second) * float64(h.o.Batch) / res.targetLines)
+	big := traffic{n: int(res.targetLines*h.o.overload.Seconds()) + h.o.Batch*h.o.Models, models: h.o.Models, seed: h.o.Seed + 1, end: h.t.end, span: h.t.span}
+	bs := big.batches(h.o.Batch, false)
 	start := time.Now()
 	nextSample := start
 	for i := 0; time.Since(start) < h.o.overload && i < len(bs); i++ {

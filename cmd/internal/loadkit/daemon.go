@@ -1,4 +1,4 @@
-package main
+package loadkit
 
 import (
 	"bufio"
@@ -26,8 +26,8 @@ const (
 	stopTimeout  = 30 * time.Second
 )
 
-// buildDaemon builds the daemon into dir and returns the binary's path.
-func buildDaemon(ctx context.Context, dir string) (string, error) {
+// BuildDaemon builds the daemon into dir and returns the binary's path.
+func BuildDaemon(ctx context.Context, dir string) (string, error) {
 	goBin, err := exec.LookPath("go")
 	if err != nil {
 		return "", fmt.Errorf("find the go command to build the daemon (or pass --binary): %w", err)
@@ -42,21 +42,24 @@ func buildDaemon(ctx context.Context, dir string) (string, error) {
 	return out, nil
 }
 
-// daemonProc is a classwatch daemon running as a child process.
-type daemonProc struct {
+// Daemon is a classwatch daemon running as a child process.
+type Daemon struct {
+	// PID is the daemon's process id.
+	PID int
+	// Base is its address, "http://127.0.0.1:port".
+	Base string
+
 	cmd     *exec.Cmd
-	pid     int
-	base    string // "http://127.0.0.1:port"
 	logPath string
 	exited  chan struct{}
 	waitErr error // set before exited is closed
 	stopped bool
 }
 
-// startDaemon runs "binary serve" with the config file on a free loopback
-// port, logging to logPath, and waits until /readyz answers 200. The
-// --database flag wins over CLASSWATCH_DATABASE_URL in the environment.
-func startDaemon(ctx context.Context, binary, configPath, databaseURL, logPath string) (*daemonProc, error) {
+// StartDaemon runs "binary serve" with the config file and the extra
+// arguments on a free loopback port, logging to logPath, and waits until
+// /readyz answers 200.
+func StartDaemon(ctx context.Context, binary, configPath, logPath string, extra ...string) (*Daemon, error) {
 	logf, err := os.Create(logPath)
 	if err != nil {
 		return nil, fmt.Errorf("create daemon log: %w", err)
@@ -66,9 +69,10 @@ func startDaemon(ctx context.Context, binary, configPath, databaseURL, logPath s
 		logf.Close()
 		return nil, fmt.Errorf("create pipe: %w", err)
 	}
-	cmd := exec.Command(binary, "serve", "--config", configPath, "--database", databaseURL, "--listen", "127.0.0.1:0")
+	args := append([]string{"serve", "--config", configPath, "--listen", "127.0.0.1:0"}, extra...)
+	cmd := exec.Command(binary, args...)
 	cmd.Stdout, cmd.Stderr = pw, logf
-	// Should the harness die without stopping it, the daemon gets SIGTERM.
+	// Should the tool die without stopping it, the daemon gets SIGTERM.
 	cmd.SysProcAttr = &syscall.SysProcAttr{Pdeathsig: syscall.SIGTERM}
 	if err := cmd.Start(); err != nil {
 		pr.Close()
@@ -77,7 +81,7 @@ func startDaemon(ctx context.Context, binary, configPath, databaseURL, logPath s
 		return nil, fmt.Errorf("start daemon: %w", err)
 	}
 	pw.Close()
-	d := &daemonProc{cmd: cmd, pid: cmd.Process.Pid, logPath: logPath, exited: make(chan struct{})}
+	d := &Daemon{cmd: cmd, PID: cmd.Process.Pid, logPath: logPath, exited: make(chan struct{})}
 	go func() {
 		d.waitErr = cmd.Wait()
 		logf.Close()
@@ -95,14 +99,22 @@ func startDaemon(ctx context.Context, binary, configPath, databaseURL, logPath s
 		}
 		_, _ = io.Copy(io.Discard, r)
 	}()
+	if err := d.waitReady(ctx, addr); err != nil {
+		return nil, err
+	}
+	return d, nil
+}
 
+// waitReady waits for the address, then for /readyz to answer 200; on
+// failure it stops the daemon and adds the end of its log to the error.
+func (d *Daemon) waitReady(ctx context.Context, addr <-chan string) error {
 	timer := time.NewTimer(startTimeout)
 	defer timer.Stop()
-	fail := func(err error) (*daemonProc, error) {
-		return nil, errors.Join(err, d.stop(), d.logTail())
+	fail := func(err error) error {
+		return errors.Join(err, d.Stop(), d.LogTail())
 	}
 	select {
-	case d.base = <-addr:
+	case d.Base = <-addr:
 	case <-d.exited:
 		return fail(fmt.Errorf("daemon exited at start: %v", d.waitErr))
 	case <-timer.C:
@@ -110,12 +122,12 @@ func startDaemon(ctx context.Context, binary, configPath, databaseURL, logPath s
 	case <-ctx.Done():
 		return fail(ctx.Err())
 	}
-	if !strings.HasPrefix(d.base, "http://127.0.0.1:") {
-		return fail(fmt.Errorf("daemon listens on %s, not on loopback", d.base))
+	if !strings.HasPrefix(d.Base, "http://127.0.0.1:") {
+		return fail(fmt.Errorf("daemon listens on %s, not on loopback", d.Base))
 	}
 	for {
-		if ready(ctx, d.base) {
-			return d, nil
+		if ready(ctx, d.Base) {
+			return nil
 		}
 		select {
 		case <-d.exited:
@@ -144,9 +156,9 @@ func ready(ctx context.Context, base string) bool {
 	return resp.StatusCode == http.StatusOK
 }
 
-// stop sends SIGTERM, waits for the daemon's orderly shutdown (killing it
+// Stop sends SIGTERM, waits for the daemon's orderly shutdown (killing it
 // after stopTimeout) and reports an unclean exit. A second call is a no-op.
-func (d *daemonProc) stop() error {
+func (d *Daemon) Stop() error {
 	if d.stopped {
 		return nil
 	}
@@ -169,16 +181,16 @@ func (d *daemonProc) stop() error {
 	}
 }
 
-func (d *daemonProc) exitError() error {
+func (d *Daemon) exitError() error {
 	if d.waitErr != nil {
 		return fmt.Errorf("daemon exit: %w", d.waitErr)
 	}
 	return nil
 }
 
-// logTail returns the end of the daemon's log as an error, to explain a
+// LogTail returns the end of the daemon's log as an error, to explain a
 // failure; nil when the log is empty.
-func (d *daemonProc) logTail() error {
+func (d *Daemon) LogTail() error {
 	data, err := os.ReadFile(d.logPath)
 	if err != nil || len(bytes.TrimSpace(data)) == 0 {
 		return nil
