@@ -366,18 +366,9 @@ func postHour(tb testing.TB, base, prefix string, hour time.Time, caught int) {
 // postAll posts NDJSON lines and expects every one accepted.
 func postAll(tb testing.TB, target string, lines []string) {
 	tb.Helper()
-	body := strings.Join(lines, "\n") + "\n"
-	resp, err := http.Post(target, "application/x-ndjson", strings.NewReader(body))
-	if err != nil {
-		tb.Fatalf("POST %s: %v", target, err)
-	}
-	defer resp.Body.Close()
-	var got ingestResponse
-	if err := json.NewDecoder(resp.Body).Decode(&got); err != nil {
-		tb.Fatalf("POST %s: decode answer: %v", target, err)
-	}
-	if resp.StatusCode != http.StatusOK || got.Accepted != len(lines) {
-		tb.Fatalf("POST %s: status %d, %+v; want 200 with all %d lines accepted", target, resp.StatusCode, got, len(lines))
+	got := postBody(tb, target, []byte(strings.Join(lines, "\n")+"\n"), http.StatusOK)
+	if got.Accepted != len(lines) {
+		tb.Fatalf("POST %s: %+v; want all %d lines accepted", target, got, len(lines))
 	}
 }
 

@@ -83,13 +83,19 @@ func sampleValue(t dto.MetricType, m *dto.Metric) float64 {
 // absent when want is nil (an undefined ratio, README.md "Metric definitions").
 func (e exposition) checkSeries(tb testing.TB, family string, labels map[string]string, want *float64) {
 	tb.Helper()
+	e.checkSeriesClose(tb, family, labels, want, nearlyEqual)
+}
+
+// checkSeriesClose is checkSeries with the closeness test passed in.
+func (e exposition) checkSeriesClose(tb testing.TB, family string, labels map[string]string, want *float64, near func(got, want float64) bool) {
+	tb.Helper()
 	got, ok := e[family][labelKey(labels)]
 	switch {
 	case want == nil && ok:
 		tb.Errorf("%s{%s} = %v, want the series absent (undefined)", family, labelKey(labels), got)
 	case want != nil && !ok:
 		tb.Errorf("%s{%s} is missing, want %v", family, labelKey(labels), *want)
-	case want != nil && !nearlyEqual(got, *want):
+	case want != nil && !near(got, *want):
 		tb.Errorf("%s{%s} = %v, want %v", family, labelKey(labels), got, *want)
 	}
 }

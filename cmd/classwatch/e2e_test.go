@@ -154,6 +154,16 @@ type ingestResponse struct {
 	Error string `json:"error"`
 }
 
+// e2eBackends are the stores the end-to-end tests run against: database
+// returns the config's database key, "" for SQLite.
+var e2eBackends = []struct {
+	name     string
+	database func(tb testing.TB) string
+}{
+	{"sqlite", func(testing.TB) string { return "" }},
+	{"postgres", pgtest.URL},
+}
+
 func TestE2E(t *testing.T) {
 	if testing.Short() {
 		t.Skip("builds and runs the binary; skipped with -short")
@@ -161,14 +171,7 @@ func TestE2E(t *testing.T) {
 	fx := loadE2EFixture(t)
 	bin := buildBinary(t)
 
-	for _, backend := range []struct {
-		name string
-		// database returns the config's database key; "" is SQLite.
-		database func(tb testing.TB) string
-	}{
-		{"sqlite", func(testing.TB) string { return "" }},
-		{"postgres", pgtest.URL},
-	} {
+	for _, backend := range e2eBackends {
 		t.Run(backend.name, func(t *testing.T) {
 			t.Parallel()
 			cfg := writeE2EConfig(t, fx, backend.database(t))
@@ -252,6 +255,35 @@ func loadE2EFixture(tb testing.TB) e2eFixture {
 	return fx
 }
 
+// postNDJSON posts an NDJSON file, expects 200 and returns the answer.
+func postNDJSON(tb testing.TB, target, file string) ingestResponse {
+	tb.Helper()
+	body, err := os.ReadFile(file)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return postBody(tb, target, body, http.StatusOK)
+}
+
+// postBody posts an NDJSON body, expects wantStatus and returns the
+// decoded answer.
+func postBody(tb testing.TB, target string, body []byte, wantStatus int) ingestResponse {
+	tb.Helper()
+	resp, err := http.Post(target, "application/x-ndjson", bytes.NewReader(body))
+	if err != nil {
+		tb.Fatalf("POST %s: %v", target, err)
+	}
+	defer resp.Body.Close()
+	var got ingestResponse
+	if err := json.NewDecoder(resp.Body).Decode(&got); err != nil {
+		tb.Fatalf("POST %s: decode answer: %v", target, err)
+	}
+	if resp.StatusCode != wantStatus {
+		tb.Fatalf("POST %s: status %d (%s), want %d", target, resp.StatusCode, got.Error, wantStatus)
+	}
+	return got
+}
+
 // checkIngest posts an NDJSON file and checks the answer's counts and the
 // rejected line numbers.
 func checkIngest(tb testing.TB, target, file string, want ingestSummary) {
@@ -260,18 +292,7 @@ func checkIngest(tb testing.TB, target, file string, want ingestSummary) {
 	if err != nil {
 		tb.Fatal(err)
 	}
-	resp, err := http.Post(target, "application/x-ndjson", bytes.NewReader(body))
-	if err != nil {
-		tb.Fatalf("POST %s: %v", file, err)
-	}
-	defer resp.Body.Close()
-	var got ingestResponse
-	if err := json.NewDecoder(resp.Body).Decode(&got); err != nil {
-		tb.Fatalf("POST %s: decode answer: %v", file, err)
-	}
-	if resp.StatusCode != http.StatusOK {
-		tb.Fatalf("POST %s: status %d (%s), want 200", file, resp.StatusCode, got.Error)
-	}
+	got := postBody(tb, target, body, http.StatusOK)
 
 	lines := 0
 	for _, l := range strings.Split(string(body), "\n") {

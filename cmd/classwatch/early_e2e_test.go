@@ -12,8 +12,6 @@ import (
 	"strings"
 	"testing"
 	"time"
-
-	"github.com/classwatch/classwatch/windows/store/pgtest"
 )
 
 // The early-warning end-to-end test runs "classwatch serve" against each
@@ -93,13 +91,7 @@ func TestEarlyWarningE2E(t *testing.T) {
 	}
 	fx := loadEarlyFixture(t)
 	bin := buildBinary(t)
-	for _, backend := range []struct {
-		name     string
-		database func(tb testing.TB) string
-	}{
-		{"sqlite", func(testing.TB) string { return "" }},
-		{"postgres", pgtest.URL},
-	} {
+	for _, backend := range e2eBackends {
 		t.Run(backend.name, func(t *testing.T) {
 			t.Parallel()
 			d := startDaemon(t, bin, writeEarlyConfig(t, fx, backend.database(t)))
@@ -175,23 +167,9 @@ func checkEarlySeries(tb testing.TB, e exposition, model, window string, classes
 	for _, c := range classes {
 		labels := map[string]string{"model": model, "window": window, "class": c}
 		// source: numpy.linalg.lstsq, clipped and renormalised, via testdata/early_e2e/gen.py
-		e.checkEarly(tb, "classwatch_estimated_prevalence_ratio", labels, want.PerClass[c].EstimatedPrevalence)
+		e.checkSeriesClose(tb, "classwatch_estimated_prevalence_ratio", labels, want.PerClass[c].EstimatedPrevalence, earlyClose)
 		// source: scipy.spatial.distance.jensenshannon via testdata/early_e2e/gen.py
-		e.checkEarly(tb, "classwatch_score_shift_distance", labels, want.PerClass[c].ScoreShift)
-	}
-}
-
-// checkEarly is checkSeries with earlyClose's tolerance.
-func (e exposition) checkEarly(tb testing.TB, family string, labels map[string]string, want *float64) {
-	tb.Helper()
-	got, ok := e[family][labelKey(labels)]
-	switch {
-	case want == nil && ok:
-		tb.Errorf("%s{%s} = %v, want the series absent (undefined)", family, labelKey(labels), got)
-	case want != nil && !ok:
-		tb.Errorf("%s{%s} is missing, want %v", family, labelKey(labels), *want)
-	case want != nil && !earlyClose(got, *want):
-		tb.Errorf("%s{%s} = %v, want %v", family, labelKey(labels), got, *want)
+		e.checkSeriesClose(tb, "classwatch_score_shift_distance", labels, want.PerClass[c].ScoreShift, earlyClose)
 	}
 }
 
@@ -314,32 +292,6 @@ func checkUnscoredCountsNowhere(tb testing.TB, base string, fx earlyFixture) {
 	e.checkSeries(tb, "classwatch_window_scored", labels, asFloat(w.Scored))
 	e.checkSeries(tb, "classwatch_brier_score", labels, w.Brier)
 	e.checkSeries(tb, "classwatch_calibration_error_ratio", labels, w.CalibrationError)
-}
-
-func postNDJSON(tb testing.TB, target, file string) ingestResponse {
-	tb.Helper()
-	body, err := os.ReadFile(file)
-	if err != nil {
-		tb.Fatal(err)
-	}
-	return postBody(tb, target, body, http.StatusOK)
-}
-
-func postBody(tb testing.TB, target string, body []byte, wantStatus int) ingestResponse {
-	tb.Helper()
-	resp, err := http.Post(target, "application/x-ndjson", bytes.NewReader(body))
-	if err != nil {
-		tb.Fatalf("POST %s: %v", target, err)
-	}
-	defer resp.Body.Close()
-	var got ingestResponse
-	if err := json.NewDecoder(resp.Body).Decode(&got); err != nil {
-		tb.Fatalf("POST %s: decode answer: %v", target, err)
-	}
-	if resp.StatusCode != wantStatus {
-		tb.Fatalf("POST %s: status %d (%s), want %d", target, resp.StatusCode, got.Error, wantStatus)
-	}
-	return got
 }
 
 func loadEarlyFixture(tb testing.TB) earlyFixture {

@@ -58,7 +58,7 @@ func TestStreamSameAsHTTP(t *testing.T) {
 	wantRejects := map[string][]string{}
 	for _, step := range fixtureSteps {
 		file := filepath.Join(e2eDir, step.file)
-		ans := postFile(t, dHTTP.url+step.path, file)
+		ans := postNDJSON(t, dHTTP.url+step.path, file)
 		for _, r := range ans.Rejected {
 			wantRejects[step.subject+".rejected"] = append(wantRejects[step.subject+".rejected"], fmt.Sprintf("%d: %s", r.Line, r.Error))
 		}

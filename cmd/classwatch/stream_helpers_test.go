@@ -41,14 +41,7 @@ func addSource(tb testing.TB, path, natsURL, extra string) {
 			block += "    " + kv + "\n"
 		}
 	}
-	f, err := os.OpenFile(path, os.O_APPEND|os.O_WRONLY, 0)
-	if err != nil {
-		tb.Fatal(err)
-	}
-	defer f.Close()
-	if _, err := f.WriteString(block); err != nil {
-		tb.Fatal(err)
-	}
+	appendConfig(tb, path, block)
 }
 
 // shortQueueWait sets ingest.queue_wait to 1s in the config at path, so
@@ -211,25 +204,6 @@ func (w *rejectWatch) get(subject string) []natsjs.Rejection {
 	w.mu.Lock()
 	defer w.mu.Unlock()
 	return append([]natsjs.Rejection(nil), w.recs[subject]...)
-}
-
-// postFile posts an NDJSON file and returns the decoded answer.
-func postFile(tb testing.TB, target, file string) ingestResponse {
-	tb.Helper()
-	body, err := os.ReadFile(file)
-	if err != nil {
-		tb.Fatal(err)
-	}
-	resp, err := http.Post(target, "application/x-ndjson", bytes.NewReader(body))
-	if err != nil {
-		tb.Fatalf("POST %s: %v", file, err)
-	}
-	defer resp.Body.Close()
-	var got ingestResponse
-	if err := json.NewDecoder(resp.Body).Decode(&got); err != nil {
-		tb.Fatalf("POST %s: decode answer: %v", file, err)
-	}
-	return got
 }
 
 // waitReady polls /readyz until it answers 200.
