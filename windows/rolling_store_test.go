@@ -14,7 +14,7 @@ import (
 
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store"
-	"github.com/classwatch/classwatch/windows/store/pgstore"
+	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
 )
@@ -353,16 +353,7 @@ func TestTrackerRefreshWaitsForCommitInFlight(t *testing.T) {
 func TestTrackerExactUnderRefresh(t *testing.T) {
 	t.Run("sqlite", func(t *testing.T) { testExactUnderRefresh(t, openStore(t)) })
 	t.Run("postgres", func(t *testing.T) {
-		ctx := context.Background()
-		s, err := pgstore.Open(ctx, pgtest.URL(t), pgstore.Options{})
-		if err != nil {
-			t.Fatal(err)
-		}
-		t.Cleanup(func() { s.Close() })
-		if err := s.Migrate(ctx); err != nil {
-			t.Fatal(err)
-		}
-		testExactUnderRefresh(t, s)
+		testExactUnderRefresh(t, pgstoretest.Open(t, pgtest.URL(t)))
 	})
 }
 

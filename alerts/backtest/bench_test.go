@@ -13,7 +13,7 @@ import (
 	"github.com/classwatch/classwatch/alerts/backtest/histgen"
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store"
-	"github.com/classwatch/classwatch/windows/store/pgstore"
+	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 )
 
@@ -35,14 +35,7 @@ func BenchmarkReplay(b *testing.B) {
 		}
 	}
 	ctx := context.Background()
-	st, err := pgstore.Open(ctx, pgtest.URL(b), pgstore.Options{})
-	if err != nil {
-		b.Fatal(err)
-	}
-	b.Cleanup(func() { st.Close() })
-	if err := st.Migrate(ctx); err != nil {
-		b.Fatal(err)
-	}
+	st := pgstoretest.Open(b, pgtest.URL(b))
 	if _, err := st.EnsureModel(ctx, "card-screen", histgen.Classes, 0); err != nil {
 		b.Fatal(err)
 	}

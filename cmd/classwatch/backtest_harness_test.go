@@ -14,7 +14,7 @@ import (
 	"time"
 
 	"github.com/classwatch/classwatch/alerts/backtest/histgen"
-	"github.com/classwatch/classwatch/windows/store/pgstore"
+	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 )
 
@@ -118,14 +118,7 @@ func harnessSpec(model string, origin time.Time, days int, seed uint64) histgen.
 func ingestHarness(t *testing.T, url string, specs []histgen.Spec) map[string][]histgen.Trial {
 	t.Helper()
 	ctx := t.Context()
-	st, err := pgstore.Open(ctx, url, pgstore.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
-	if err := st.Migrate(ctx); err != nil {
-		t.Fatal(err)
-	}
+	st := pgstoretest.Open(t, url)
 	out := map[string][]histgen.Trial{}
 	for _, s := range specs {
 		began := time.Now()

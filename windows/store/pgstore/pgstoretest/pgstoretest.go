@@ -1,5 +1,5 @@
 // Package pgstoretest opens PostgreSQL stores for tests of the packages
-// that run on pgstore (alerts, collector, windows, lease). It lives apart
+// that run on pgstore (alerts, collector, windows, lease, the daemon). It lives apart
 // from pgtest, which pgstore's own tests import and so may not import
 // pgstore.
 package pgstoretest
