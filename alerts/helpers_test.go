@@ -13,6 +13,7 @@ import (
 
 	"github.com/classwatch/classwatch/windows"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 // t0 is the tests' "now": the end of the current window.
@@ -28,20 +29,6 @@ var (
 	dayWindow  = windows.Window{Name: "1d", Length: 24 * time.Hour}
 	weekWindow = windows.Window{Name: "7d-matured", Length: 168 * time.Hour, Lag: 72 * time.Hour}
 )
-
-// openStore opens and migrates the SQLite file at path.
-func openStore(tb testing.TB, path string) *sqlitestore.Store {
-	tb.Helper()
-	ctx := context.Background()
-	st, err := sqlitestore.Open(ctx, path, sqlitestore.Options{RelaxedSync: true})
-	if err != nil {
-		tb.Fatalf("open store: %v", err)
-	}
-	if err := st.Migrate(ctx); err != nil {
-		tb.Fatalf("migrate store: %v", err)
-	}
-	return st
-}
 
 // views is the tests' window source: views set by hand, read through View
 // as the rolling tracker's would be.
@@ -122,7 +109,7 @@ func (c *clock) set(t time.Time) {
 func setup(tb testing.TB) *bundle {
 	tb.Helper()
 	path := filepath.Join(tb.TempDir(), "classwatch.db")
-	b := &bundle{path: path, st: openStore(tb, path), views: newViews(), reg: prometheus.NewRegistry(), now: &clock{t: t0}}
+	b := &bundle{path: path, st: sqlitestoretest.OpenAt(tb, path, sqlitestore.Options{RelaxedSync: true}), views: newViews(), reg: prometheus.NewRegistry(), now: &clock{t: t0}}
 	tb.Cleanup(func() { b.st.Close() })
 	if _, err := b.st.EnsureModel(context.Background(), "card-fraud", binary, 0); err != nil {
 		tb.Fatalf("register model: %v", err)
@@ -160,7 +147,7 @@ func (b *bundle) reopen(tb testing.TB) {
 	if err := b.st.Close(); err != nil {
 		tb.Fatalf("close store: %v", err)
 	}
-	b.st = openStore(tb, b.path)
+	b.st = sqlitestoretest.OpenAt(tb, b.path, sqlitestore.Options{RelaxedSync: true})
 	b.reg = prometheus.NewRegistry()
 }
 

@@ -5,13 +5,13 @@ import (
 	"context"
 	"fmt"
 	"io"
-	"path/filepath"
 	"testing"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 // benchLines returns n prediction lines of a fictional card-screening
@@ -63,14 +63,7 @@ func BenchmarkDecodeValidate(b *testing.B) {
 // SQLite file: decode, validate, resolve, commit in batches of 1000 lines.
 func BenchmarkIngestSQLite(b *testing.B) {
 	ctx := context.Background()
-	st, err := sqlitestore.Open(ctx, filepath.Join(b.TempDir(), "bench.db"), sqlitestore.Options{})
-	if err != nil {
-		b.Fatal(err)
-	}
-	defer st.Close()
-	if err := st.Migrate(ctx); err != nil {
-		b.Fatal(err)
-	}
+	st := sqlitestoretest.Open(b, sqlitestore.Options{})
 	c, err := New(Options{
 		Store:      st,
 		Registerer: prometheus.NewRegistry(),

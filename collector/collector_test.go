@@ -26,6 +26,7 @@ import (
 	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 const (
@@ -48,7 +49,7 @@ type backend struct {
 func sqliteBackend() backend {
 	return backend{"sqlite", func(tb testing.TB) (store.Store, func(testing.TB) store.Store) {
 		path := filepath.Join(tb.TempDir(), "classwatch.db")
-		return openStore(tb, path), func(tb testing.TB) store.Store { return openStore(tb, path) }
+		return sqlitestoretest.OpenAt(tb, path, sqlitestore.Options{}), func(tb testing.TB) store.Store { return sqlitestoretest.OpenAt(tb, path, sqlitestore.Options{}) }
 	}}
 }
 
@@ -149,20 +150,6 @@ func (p pausingStore) IngestPredictions(ctx context.Context, batch []store.Predi
 		p.pause()
 	}
 	return out, err
-}
-
-func openStore(tb testing.TB, path string) *sqlitestore.Store {
-	tb.Helper()
-	ctx := context.Background()
-	st, err := sqlitestore.Open(ctx, path, sqlitestore.Options{})
-	if err != nil {
-		tb.Fatalf("open store: %v", err)
-	}
-	tb.Cleanup(func() { st.Close() })
-	if err := st.Migrate(ctx); err != nil {
-		tb.Fatalf("migrate: %v", err)
-	}
-	return st
 }
 
 // testModels are a fictional card-screening model with fixed classes and a
@@ -512,7 +499,7 @@ func testJSONBodies(t *testing.T, be backend) {
 }
 
 func TestNewRejectsBadOptions(t *testing.T) {
-	st := openStore(t, filepath.Join(t.TempDir(), "x.db"))
+	st := sqlitestoretest.Open(t, sqlitestore.Options{})
 	cases := map[string]collector.Options{
 		"no store":               {Registerer: prometheus.NewRegistry()},
 		"no registerer":          {Store: st},

@@ -1,12 +1,10 @@
 package collector
 
 import (
-	"context"
 	"io"
 	"net/http"
 	"net/http/httptest"
 	"os"
-	"path/filepath"
 	"runtime"
 	"runtime/debug"
 	rtmetrics "runtime/metrics"
@@ -19,6 +17,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 // memPeak samples, every millisecond until stop, the heap in use (live
@@ -80,15 +79,7 @@ func (x *xLines) Read(p []byte) (int, error) {
 // for the resident set size, which counts body buffers mapped outside the
 // heap.
 func BenchmarkAllBadBody(b *testing.B) {
-	ctx := context.Background()
-	st, err := sqlitestore.Open(ctx, filepath.Join(b.TempDir(), "mem.db"), sqlitestore.Options{})
-	if err != nil {
-		b.Fatal(err)
-	}
-	defer st.Close()
-	if err := st.Migrate(ctx); err != nil {
-		b.Fatal(err)
-	}
+	st := sqlitestoretest.Open(b, sqlitestore.Options{})
 	c, err := New(Options{Store: st, Registerer: prometheus.NewRegistry(),
 		Models: []ModelPolicy{{Name: "card-fraud", Classes: []string{"legit", "fraud"}}}})
 	if err != nil {

@@ -4,7 +4,6 @@ import (
 	"context"
 	"fmt"
 	"math/rand/v2"
-	"path/filepath"
 	"runtime"
 	"slices"
 	"sync"
@@ -17,22 +16,8 @@ import (
 	"github.com/classwatch/classwatch/windows/store/pgstore/pgstoretest"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
-
-// openStore opens a migrated SQLite store in a fresh file.
-func openStore(tb testing.TB) *sqlitestore.Store {
-	tb.Helper()
-	ctx := context.Background()
-	s, err := sqlitestore.Open(ctx, filepath.Join(tb.TempDir(), "classwatch.db"), sqlitestore.Options{})
-	if err != nil {
-		tb.Fatal(err)
-	}
-	tb.Cleanup(func() { s.Close() })
-	if err := s.Migrate(ctx); err != nil {
-		tb.Fatal(err)
-	}
-	return s
-}
 
 // traffic writes random batches of predictions and labels (late labels,
 // early labels, corrections, duplicates) for a fictional parcel-sorting
@@ -207,7 +192,7 @@ func sameViews(t *testing.T, got, want *windows.Tracker, model string) {
 // hold the same windows, which also equal the store's own sums.
 func TestTrackerLoadAndRefreshMatchApply(t *testing.T) {
 	ctx := context.Background()
-	s := openStore(t)
+	s := sqlitestoretest.Open(t, sqlitestore.Options{})
 	tf := newTraffic(t, s, 1)
 	live := newSorterTracker(t, s)
 	live.SetClasses("parcel-sorter", sorterClasses)
@@ -272,7 +257,7 @@ func (h *snapshotHookStore) Snapshot(ctx context.Context, fixedFunc func(), read
 // calls must survive the swap, once each.
 func TestTrackerRefreshKeepsConcurrentCommits(t *testing.T) {
 	ctx := context.Background()
-	s := openStore(t)
+	s := sqlitestoretest.Open(t, sqlitestore.Options{})
 	tf := newTraffic(t, s, 2)
 	wrapped := &snapshotHookStore{Store: s}
 	tr := newSorterTracker(t, wrapped)
@@ -299,7 +284,7 @@ func TestTrackerRefreshKeepsConcurrentCommits(t *testing.T) {
 // snapshot.
 func TestTrackerRefreshWaitsForCommitInFlight(t *testing.T) {
 	ctx := context.Background()
-	s := openStore(t)
+	s := sqlitestoretest.Open(t, sqlitestore.Options{})
 	tf := newTraffic(t, s, 4)
 	snapshots := make(chan struct{}, 1)
 	wrapped := &snapshotHookStore{Store: s, taken: func() {
@@ -351,7 +336,7 @@ func TestTrackerRefreshWaitsForCommitInFlight(t *testing.T) {
 // must then equal the store's own sums at once, without another Refresh.
 // A last Refresh with nothing in flight must keep them equal.
 func TestTrackerExactUnderRefresh(t *testing.T) {
-	t.Run("sqlite", func(t *testing.T) { testExactUnderRefresh(t, openStore(t)) })
+	t.Run("sqlite", func(t *testing.T) { testExactUnderRefresh(t, sqlitestoretest.Open(t, sqlitestore.Options{})) })
 	t.Run("postgres", func(t *testing.T) {
 		testExactUnderRefresh(t, pgstoretest.Open(t, pgtest.URL(t)))
 	})

@@ -7,6 +7,8 @@ import (
 	"time"
 
 	"github.com/classwatch/classwatch/windows/store"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 // TestTrackedStore writes random traffic through Tracker.Track on a real
@@ -16,7 +18,7 @@ import (
 // move the watermark.
 func TestTrackedStore(t *testing.T) {
 	ctx := context.Background()
-	s := openStore(t)
+	s := sqlitestoretest.Open(t, sqlitestore.Options{})
 	tr := newSorterTracker(t, s)
 	ts := tr.Track(s)
 	tf := newTraffic(t, ts, 11)

@@ -7,7 +7,6 @@ import (
 	"encoding/json"
 	"fmt"
 	"io"
-	"path/filepath"
 	"strings"
 	"sync"
 	"testing"
@@ -22,6 +21,7 @@ import (
 	"github.com/classwatch/classwatch/collector/natsjs/natstest"
 	"github.com/classwatch/classwatch/windows/store"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 // receiveTime is the fixed clock of the tests' collector.
@@ -47,17 +47,10 @@ func newRig(t *testing.T, maxBody int64) *rig {
 	t.Helper()
 	ctx := context.Background()
 	r := &rig{srv: natstest.Start(t), reg: prometheus.NewRegistry()}
-	st, err := sqlitestore.Open(ctx, filepath.Join(t.TempDir(), "classwatch.db"), sqlitestore.Options{})
-	if err != nil {
-		t.Fatalf("open store: %v", err)
-	}
-	t.Cleanup(func() { st.Close() })
-	if err := st.Migrate(ctx); err != nil {
-		t.Fatalf("migrate: %v", err)
-	}
-	r.store = st
+	r.store = sqlitestoretest.Open(t, sqlitestore.Options{})
+	var err error
 	r.col, err = collector.New(collector.Options{
-		Store:      st,
+		Store:      r.store,
 		Models:     []collector.ModelPolicy{{Name: "card-screen", Classes: []string{"legit", "fraud"}}},
 		Registerer: r.reg,
 		Now:        receiveTime,

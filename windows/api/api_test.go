@@ -9,7 +9,6 @@ import (
 	"net/http"
 	"net/http/httptest"
 	"net/url"
-	"path/filepath"
 	"slices"
 	"strings"
 	"testing"
@@ -19,6 +18,7 @@ import (
 	"github.com/classwatch/classwatch/windows/api"
 	"github.com/classwatch/classwatch/windows/store"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 // t0 is the start of the scenario: a fictional bank's card screening
@@ -31,17 +31,11 @@ type testBundle struct {
 	server  *httptest.Server
 }
 
+// setup serves the API on a new store with the default windows 1h and
+// 30m-matured.
 func setup(t *testing.T) *testBundle {
 	t.Helper()
-	ctx := context.Background()
-	s, err := sqlitestore.Open(ctx, filepath.Join(t.TempDir(), "classwatch.db"), sqlitestore.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { s.Close() })
-	if err := s.Migrate(ctx); err != nil {
-		t.Fatal(err)
-	}
+	s := sqlitestoretest.Open(t, sqlitestore.Options{})
 	tr, err := windows.NewTracker(windows.TrackerOptions{
 		Store:         s,
 		DefaultBucket: 5 * time.Minute,
@@ -53,6 +47,13 @@ func setup(t *testing.T) *testBundle {
 	if err != nil {
 		t.Fatal(err)
 	}
+	return serve(t, s, tr)
+}
+
+// serve serves the API on s and tr, the clock at t0 + 5h, until the test
+// ends.
+func serve(t *testing.T, s *sqlitestore.Store, tr *windows.Tracker) *testBundle {
+	t.Helper()
 	mux := http.NewServeMux()
 	api.New(api.Options{Store: s, Tracker: tr, Now: func() time.Time { return t0.Add(5 * time.Hour) }}).Register(mux)
 	srv := httptest.NewServer(mux)

@@ -8,7 +8,6 @@ import (
 	"net/http"
 	"net/http/httptest"
 	"net/url"
-	"path/filepath"
 	"testing"
 	"time"
 
@@ -16,6 +15,7 @@ import (
 	"github.com/classwatch/classwatch/windows/api"
 	"github.com/classwatch/classwatch/windows/store"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 // benchClasses returns n class names of a fictional warehouse's parcel
@@ -74,20 +74,6 @@ func fillStore(tb testing.TB, s store.Store, model string, classes []string, fro
 	}
 }
 
-func openBenchStore(b *testing.B) *sqlitestore.Store {
-	b.Helper()
-	ctx := context.Background()
-	s, err := sqlitestore.Open(ctx, filepath.Join(b.TempDir(), "bench.db"), sqlitestore.Options{})
-	if err != nil {
-		b.Fatal(err)
-	}
-	b.Cleanup(func() { s.Close() })
-	if err := s.Migrate(ctx); err != nil {
-		b.Fatal(err)
-	}
-	return s
-}
-
 // BenchmarkAudit measures the audit report of one model with 12 classes
 // over 90 days of 5-minute buckets (25,920 buckets, 3 predictions each)
 // in the embedded SQLite store: end to end (every store read, figures and
@@ -95,7 +81,7 @@ func openBenchStore(b *testing.B) *sqlitestore.Store {
 // the same run, with labels as known now (maintained cells) and as of a
 // time (recounted from the raw rows), and the rendering alone.
 func BenchmarkAudit(b *testing.B) {
-	s := openBenchStore(b)
+	s := sqlitestoretest.Open(b, sqlitestore.Options{})
 	to := time.Date(2026, 6, 1, 0, 0, 0, 0, time.UTC)
 	from := to.Add(-90 * 24 * time.Hour)
 	fillStore(b, s, "parcel-sorter", benchClasses(12), from, to, 3, 1)
@@ -142,7 +128,7 @@ func BenchmarkAudit(b *testing.B) {
 // windows (two days of traffic each, in SQLite, windows held by the
 // tracker) against GET /v1/models of the same daemon as the baseline.
 func BenchmarkOverview(b *testing.B) {
-	s := openBenchStore(b)
+	s := sqlitestoretest.Open(b, sqlitestore.Options{})
 	to := time.Date(2026, 6, 1, 0, 0, 0, 0, time.UTC)
 	for m := range 50 {
 		fillStore(b, s, fmt.Sprintf("sorter-%02d", m), benchClasses(12), to.Add(-48*time.Hour), to, 1, uint64(m))

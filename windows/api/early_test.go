@@ -1,20 +1,17 @@
 package api_test
 
 import (
-	"context"
 	"fmt"
 	"net/http"
-	"net/http/httptest"
 	"net/url"
-	"path/filepath"
 	"testing"
 	"time"
 
 	"github.com/classwatch/classwatch/windows"
-	"github.com/classwatch/classwatch/windows/api"
 	"github.com/classwatch/classwatch/windows/stats"
 	"github.com/classwatch/classwatch/windows/store"
 	"github.com/classwatch/classwatch/windows/store/sqlitestore"
+	"github.com/classwatch/classwatch/windows/store/sqlitestore/sqlitestoretest"
 )
 
 // TestMatrixEarlyWarning checks that the matrix answer of a recent,
@@ -23,15 +20,7 @@ import (
 // reference window's labeled matrix and the period's predicted counts, and
 // that the windows answer carries it too, with reliability bins.
 func TestMatrixEarlyWarning(t *testing.T) {
-	ctx := context.Background()
-	s, err := sqlitestore.Open(ctx, filepath.Join(t.TempDir(), "classwatch.db"), sqlitestore.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { s.Close() })
-	if err := s.Migrate(ctx); err != nil {
-		t.Fatal(err)
-	}
+	s := sqlitestoretest.Open(t, sqlitestore.Options{})
 	tr, err := windows.NewTracker(windows.TrackerOptions{
 		Store: s,
 		Models: []windows.ModelOptions{{Name: "card-screen", ReferenceWindow: "30m-matured", Windows: []windows.Window{
@@ -42,11 +31,7 @@ func TestMatrixEarlyWarning(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	mux := http.NewServeMux()
-	api.New(api.Options{Store: s, Tracker: tr, Now: func() time.Time { return t0.Add(5 * time.Hour) }}).Register(mux)
-	srv := httptest.NewServer(mux)
-	t.Cleanup(srv.Close)
-	b := &testBundle{store: s, tracker: tr, server: srv}
+	b := serve(t, s, tr)
 
 	// Minutes 10–39 (the reference window once the watermark is 13:10):
 	// 40 labeled predictions; minutes 40–69: 30 unlabeled ones, more of
