@@ -82,61 +82,48 @@ func chunkFor(n int) int {
 // insertPredictionsSQL is the insert of rows predictions. It has no conflict
 // clause: a key already stored fails the whole statement.
 func insertPredictionsSQL(rows int) string {
-	var b strings.Builder
-	b.WriteString("INSERT INTO predictions (model_id, id, at, bucket, segment, predicted, scores, received_at)\nVALUES ")
-	for i := range rows {
-		if i > 0 {
-			b.WriteString(", ")
-		}
-		b.WriteString("(?, ?, ?, ?, ?, ?, ?, ?)")
-	}
-	return b.String()
+	return listSQL("INSERT INTO predictions (model_id, id, at, bucket, segment, predicted, scores, received_at)\nVALUES ",
+		rows, same("(?, ?, ?, ?, ?, ?, ?, ?)"), "")
 }
 
 // lookupLabelsSQL reads the join keys and current labels of rows
 // predictions of model ?1, whose ids are ?2 on.
 func lookupLabelsSQL(rows int) string {
-	var b strings.Builder
-	b.WriteString("SELECT id, bucket, segment, predicted, label, label_at, label_implied, scores FROM predictions\nWHERE model_id = ?1 AND id IN (")
-	for i := range rows {
-		if i > 0 {
-			b.WriteString(", ")
-		}
-		b.WriteString("?" + strconv.Itoa(i+2))
-	}
-	b.WriteString(")")
-	return b.String()
+	return listSQL("SELECT id, bucket, segment, predicted, label, label_at, label_implied, scores FROM predictions\nWHERE model_id = ?1 AND id IN (",
+		rows, func(i int) string { return "?" + strconv.Itoa(i+2) }, ")")
 }
 
 // insertVersionsSQL inserts rows real label versions (model, id, at,
 // actual, received) and returns those that were new.
 func insertVersionsSQL(rows int) string {
-	var b strings.Builder
-	b.WriteString("INSERT INTO label_versions (model_id, id, at, actual, received_at, implied)\nVALUES ")
-	for i := range rows {
-		if i > 0 {
-			b.WriteString(", ")
-		}
-		b.WriteString("(?, ?, ?, ?, ?, 0)")
-	}
-	b.WriteString("\nON CONFLICT (model_id, id, implied, at, actual) DO NOTHING\nRETURNING model_id, id, at, actual")
-	return b.String()
+	return listSQL("INSERT INTO label_versions (model_id, id, at, actual, received_at, implied)\nVALUES ",
+		rows, same("(?, ?, ?, ?, ?, 0)"), "\nON CONFLICT (model_id, id, implied, at, actual) DO NOTHING\nRETURNING model_id, id, at, actual")
 }
 
 // setLabelsSQL sets the current label of rows predictions to a real
 // version, each row (model, id, label, label_at).
 func setLabelsSQL(rows int) string {
+	return listSQL("UPDATE predictions SET label = v.column3, label_at = v.column4, label_implied = 0\nFROM (VALUES ",
+		rows, same("(?, ?, ?, ?)"), ") AS v\nWHERE predictions.model_id = v.column1 AND predictions.id = v.column2")
+}
+
+// listSQL is head, then item(0) to item(rows-1) separated by ", ", then
+// tail: the multi-row statements above repeat a row or a parameter.
+func listSQL(head string, rows int, item func(i int) string, tail string) string {
 	var b strings.Builder
-	b.WriteString("UPDATE predictions SET label = v.column3, label_at = v.column4, label_implied = 0\nFROM (VALUES ")
+	b.WriteString(head)
 	for i := range rows {
 		if i > 0 {
 			b.WriteString(", ")
 		}
-		b.WriteString("(?, ?, ?, ?)")
+		b.WriteString(item(i))
 	}
-	b.WriteString(") AS v\nWHERE predictions.model_id = v.column1 AND predictions.id = v.column2")
+	b.WriteString(tail)
 	return b.String()
 }
+
+// same returns an item function that repeats s.
+func same(s string) func(int) string { return func(int) string { return s } }
 
 // Label ingest.
 const (
