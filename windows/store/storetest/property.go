@@ -311,14 +311,53 @@ func testConcurrentIngest(t *testing.T, s store.Store) {
 	for _, m := range []string{fraudModel, ticketModel} {
 		ensure(t, s, m, classesOf(m)...)
 	}
-	const workers, rounds, perBatch = 4, 10, 10
-	type work struct {
-		preds  [][]store.Prediction
-		labels [][]store.Label
-	}
-	rng := rand.New(rand.NewPCG(7, 7))
 	ref := newReference()
-	plans := make([]work, workers)
+	plans := concurrentPlans(ref)
+	var wg sync.WaitGroup
+	done := make(chan struct{})
+	for w, plan := range plans {
+		wg.Go(func() { runIngestPlan(t, s, w, plan) })
+	}
+	var reader sync.WaitGroup
+	reader.Go(func() {
+		for {
+			select {
+			case <-done:
+				return
+			default:
+			}
+			if _, err := s.Counts(t.Context(), all(fraudModel)); err != nil {
+				t.Errorf("Counts during ingest: %v", err)
+				return
+			}
+		}
+	})
+	wg.Wait()
+	close(done)
+	reader.Wait()
+	for _, model := range []string{fraudModel, ticketModel} {
+		q := all(model)
+		wantRefCounts(t, model+" Counts", counts(t, s, q), ref.counts(q, nil))
+		preds, labeled, latest := ref.totals(model)
+		wantTotals(t, s, model, preds, labeled, latest)
+	}
+	wantVerifyClean(t, s)
+}
+
+// ingestPlan is one writer's batches of testConcurrentIngest, a round
+// each.
+type ingestPlan struct {
+	preds  [][]store.Prediction
+	labels [][]store.Label
+}
+
+// concurrentPlans draws four writers' ten rounds of ten predictions and
+// their labels (a third of them labeled twice), every writer into the same
+// few buckets, and records them in ref.
+func concurrentPlans(ref *reference) []ingestPlan {
+	const workers, rounds, perBatch = 4, 10, 10
+	rng := rand.New(rand.NewPCG(7, 7))
+	plans := make([]ingestPlan, workers)
 	for w := range plans {
 		model := []string{fraudModel, ticketModel}[w%2]
 		for r := range rounds {
@@ -339,56 +378,32 @@ func testConcurrentIngest(t *testing.T, s store.Store) {
 			ref.labels(ls, at(2*time.Hour))
 		}
 	}
+	return plans
+}
+
+// runIngestPlan ingests writer w's rounds, the labels before the
+// predictions in every other round.
+func runIngestPlan(t *testing.T, s store.Store, w int, plan ingestPlan) {
 	ctx := t.Context()
-	var wg sync.WaitGroup
-	done := make(chan struct{})
-	for w, plan := range plans {
-		wg.Go(func() {
-			for r := range rounds {
-				labelsFirst := (w+r)%2 == 1
-				if labelsFirst {
-					if _, err := s.IngestLabels(ctx, plan.labels[r], at(2*time.Hour)); err != nil {
-						t.Errorf("worker %d: IngestLabels: %v", w, err)
-						return
-					}
-				}
-				if _, err := s.IngestPredictions(ctx, plan.preds[r], at(2*time.Hour)); err != nil {
-					t.Errorf("worker %d: IngestPredictions: %v", w, err)
-					return
-				}
-				if !labelsFirst {
-					if _, err := s.IngestLabels(ctx, plan.labels[r], at(2*time.Hour)); err != nil {
-						t.Errorf("worker %d: IngestLabels: %v", w, err)
-						return
-					}
-				}
-			}
-		})
-	}
-	var reader sync.WaitGroup
-	reader.Go(func() {
-		for {
-			select {
-			case <-done:
-				return
-			default:
-			}
-			if _, err := s.Counts(ctx, all(fraudModel)); err != nil {
-				t.Errorf("Counts during ingest: %v", err)
+	for r := range plan.preds {
+		labelsFirst := (w+r)%2 == 1
+		if labelsFirst {
+			if _, err := s.IngestLabels(ctx, plan.labels[r], at(2*time.Hour)); err != nil {
+				t.Errorf("worker %d: IngestLabels: %v", w, err)
 				return
 			}
 		}
-	})
-	wg.Wait()
-	close(done)
-	reader.Wait()
-	for _, model := range []string{fraudModel, ticketModel} {
-		q := all(model)
-		wantRefCounts(t, model+" Counts", counts(t, s, q), ref.counts(q, nil))
-		preds, labeled, latest := ref.totals(model)
-		wantTotals(t, s, model, preds, labeled, latest)
+		if _, err := s.IngestPredictions(ctx, plan.preds[r], at(2*time.Hour)); err != nil {
+			t.Errorf("worker %d: IngestPredictions: %v", w, err)
+			return
+		}
+		if !labelsFirst {
+			if _, err := s.IngestLabels(ctx, plan.labels[r], at(2*time.Hour)); err != nil {
+				t.Errorf("worker %d: IngestLabels: %v", w, err)
+				return
+			}
+		}
 	}
-	wantVerifyClean(t, s)
 }
 
 // testConcurrentJoin races, for each id, a prediction, its label and a

@@ -17,7 +17,7 @@ import (
 func testSnapshot(t *testing.T, s store.Store) {
 	ctx := t.Context()
 	ensure(t, s, fraudModel, "legit", "fraud")
-	b0, b10, b20 := at(0), at(10*time.Minute), at(20*time.Minute)
+	b0 := at(0)
 
 	// Before the snapshot: one prediction, labeled.
 	ingestPredictions(t, s, at(time.Minute), pred(fraudModel, "t1", at(0), "fraud", "web"))
@@ -25,29 +25,6 @@ func testSnapshot(t *testing.T, s store.Store) {
 	before := store.Counts{
 		Cells:     []store.Cell{cell(b0, "fraud", "fraud", 1)},
 		Predicted: []store.PredictedCount{predicted(b0, "fraud", 1)},
-	}
-
-	// wantSnapshot reads r and expects exactly the state before the call.
-	wantSnapshot := func(what string, r store.SnapshotReader) {
-		t.Helper()
-		c, err := r.Counts(ctx, all(fraudModel))
-		if err != nil {
-			t.Fatalf("%s: Counts: %v", what, err)
-		}
-		wantCounts(t, what+": Counts", c, before)
-		ms, err := r.Models(ctx)
-		if err != nil {
-			t.Fatalf("%s: Models: %v", what, err)
-		}
-		if len(ms) != 1 {
-			t.Fatalf("%s: Models lists %d models, want only %s (%s is registered after the snapshot)", what, len(ms), fraudModel, ticketModel)
-		}
-		m := ms[0]
-		if m.Name != fraudModel || !slices.Equal(m.Classes, []string{"legit", "fraud"}) ||
-			m.Predictions != 1 || m.Labeled != 1 || !m.LatestAt.Equal(at(0)) {
-			t.Errorf("%s: Models = %+v, want %s [legit fraud] with 1 prediction, 1 labeled, latest %s",
-				what, m, fraudModel, at(0).Format(time.RFC3339))
-		}
 	}
 
 	fixedCalls := 0
@@ -64,10 +41,10 @@ func testSnapshot(t *testing.T, s store.Store) {
 		if fixedCalls != 1 {
 			t.Errorf("fixedFunc ran %d times before readFunc, want 1", fixedCalls)
 		}
-		wantSnapshot("first read", r)
+		wantSnapshot(t, "first read", r, before)
 		// Between two reads of one snapshot.
 		ingestPredictions(t, s, at(21*time.Minute), pred(fraudModel, "t3", at(20*time.Minute), "fraud", "app"))
-		wantSnapshot("second read", r)
+		wantSnapshot(t, "second read", r, before)
 		if _, err := r.Counts(ctx, all("no-such-model")); !errors.Is(err, store.ErrUnknownModel) {
 			t.Errorf("Counts of an unregistered model in a snapshot: %v, want ErrUnknownModel", err)
 		}
@@ -79,7 +56,40 @@ func testSnapshot(t *testing.T, s store.Store) {
 	if fixedCalls != 1 {
 		t.Errorf("fixedFunc ran %d times, want 1", fixedCalls)
 	}
+	checkAfterSnapshot(t, s)
+}
 
+// wantSnapshot reads r and expects exactly the state before testSnapshot's
+// call: the counts before and the fraud model alone.
+func wantSnapshot(t *testing.T, what string, r store.SnapshotReader, before store.Counts) {
+	t.Helper()
+	ctx := t.Context()
+	c, err := r.Counts(ctx, all(fraudModel))
+	if err != nil {
+		t.Fatalf("%s: Counts: %v", what, err)
+	}
+	wantCounts(t, what+": Counts", c, before)
+	ms, err := r.Models(ctx)
+	if err != nil {
+		t.Fatalf("%s: Models: %v", what, err)
+	}
+	if len(ms) != 1 {
+		t.Fatalf("%s: Models lists %d models, want only %s (%s is registered after the snapshot)", what, len(ms), fraudModel, ticketModel)
+	}
+	m := ms[0]
+	if m.Name != fraudModel || !slices.Equal(m.Classes, []string{"legit", "fraud"}) ||
+		m.Predictions != 1 || m.Labeled != 1 || !m.LatestAt.Equal(at(0)) {
+		t.Errorf("%s: Models = %+v, want %s [legit fraud] with 1 prediction, 1 labeled, latest %s",
+			what, m, fraudModel, at(0).Format(time.RFC3339))
+	}
+}
+
+// checkAfterSnapshot checks the store after testSnapshot's snapshot: every
+// commit shows outside it and in a fresh snapshot, and readFunc's error
+// comes back as it is.
+func checkAfterSnapshot(t *testing.T, s store.Store) {
+	ctx := t.Context()
+	b0, b10, b20 := at(0), at(10*time.Minute), at(20*time.Minute)
 	// Outside, every commit shows: t1 corrected to legit, t2 labeled
 	// legit, t3 unlabeled.
 	wantCounts(t, "Counts after the snapshot", counts(t, s, all(fraudModel)), store.Counts{
@@ -91,7 +101,7 @@ func testSnapshot(t *testing.T, s store.Store) {
 	wantTotals(t, s, fraudModel, 3, 2, at(20*time.Minute))
 
 	// A fresh snapshot sees what was committed before it.
-	err = s.Snapshot(ctx, nil, func(r store.SnapshotReader) error {
+	err := s.Snapshot(ctx, nil, func(r store.SnapshotReader) error {
 		c, err := r.Counts(ctx, all(fraudModel))
 		if err != nil {
 			return err
