@@ -1,9 +1,6 @@
 package windows_test
 
 import (
-	"bytes"
-	"os"
-	"os/exec"
 	"strconv"
 	"strings"
 	"testing"
@@ -117,18 +114,7 @@ func TestGathererEarlyWarning(t *testing.T) {
 			t.Errorf("%s of the unlabeled window: present %v", name, ok)
 		}
 	}
-	promtool, err := exec.LookPath("promtool")
-	if err != nil {
-		if os.Getenv("CI") == "true" {
-			t.Fatal("promtool is required in CI")
-		}
-		t.Skip("promtool not installed")
-	}
-	cmd := exec.Command(promtool, "check", "metrics")
-	cmd.Stdin = bytes.NewReader(text)
-	if out, err := cmd.CombinedOutput(); err != nil || len(bytes.TrimSpace(out)) > 0 {
-		t.Errorf("promtool check metrics: %v\n%s", err, out)
-	}
+	checkPromtool(t, text)
 	if !strings.Contains(string(text), "classwatch_estimated_precision_ratio{") {
 		t.Error("no classwatch_estimated_precision_ratio series")
 	}
