@@ -40,13 +40,7 @@ var fixtureSteps = []struct{ subject, path, file string }{
 // matrices and counters, and the HTTP answer's rejected lines on the
 // .rejected subjects.
 func TestStreamSameAsHTTP(t *testing.T) {
-	if testing.Short() {
-		t.Skip("builds and runs the binary; skipped with -short")
-	}
-	t.Parallel()
-	fx := loadE2EFixture(t)
-	srv := natstest.Start(t)
-	bin := buildBinary(t)
+	fx, srv, bin := streamSetup(t)
 	cfgHTTP := writeE2EConfig(t, fx, pgtest.URL(t))
 	cfgStream := writeE2EConfig(t, fx, pgtest.URL(t))
 	addSource(t, cfgStream, srv.URL, "")
@@ -99,6 +93,16 @@ func TestStreamSameAsHTTP(t *testing.T) {
 	// source: scikit-learn 1.2.1 / statsmodels 0.13.5 via testdata/e2e/gen.py
 	checkWindowsAPI(t, dStream.url, fx)
 
+	checkRejects(t, rejects, wantRejects)
+	dStream.stop(t)
+	dHTTP.stop(t)
+}
+
+// checkRejects waits for the records of the .rejected subjects to match
+// the HTTP answers' rejected lines, and expects each prediction record to
+// carry its original line.
+func checkRejects(t *testing.T, rejects *rejectWatch, wantRejects map[string][]string) {
+	t.Helper()
 	for subject, want := range wantRejects {
 		var got []string
 		deadline := time.Now().Add(10 * time.Second)
@@ -118,8 +122,29 @@ func TestStreamSameAsHTTP(t *testing.T) {
 			t.Errorf("rejection of line %d lacks its original line", r.Line)
 		}
 	}
-	dStream.stop(t)
-	dHTTP.stop(t)
+}
+
+// streamSetup skips the test under -short, runs it in parallel, and
+// returns the fixture, a private nats-server and the binary.
+func streamSetup(t *testing.T) (e2eFixture, *natstest.Server, string) {
+	t.Helper()
+	if testing.Short() {
+		t.Skip("builds and runs the binary; skipped with -short")
+	}
+	t.Parallel()
+	return loadE2EFixture(t), natstest.Start(t), buildBinary(t)
+}
+
+// replicaConfig writes the fixture's config on database with a nats
+// source of the given keys, the short queue wait a short ack_wait needs,
+// and refresh: 1s, so that replicas see each other's commits.
+func replicaConfig(t *testing.T, fx e2eFixture, database, natsURL, keys string) string {
+	t.Helper()
+	cfg := writeE2EConfig(t, fx, database)
+	addSource(t, cfg, natsURL, keys)
+	shortQueueWait(t, cfg)
+	appendConfig(t, cfg, "refresh: 1s\n")
+	return cfg
 }
 
 // compareExpositions reports every series that differs between two
@@ -210,17 +235,8 @@ func metricValue(tb testing.TB, base, family, fragment string) float64 {
 // exact figures: the messages the killed replica held come back to the
 // other one, and the store's idempotence counts them once.
 func TestStreamReplicasSurviveKill(t *testing.T) {
-	if testing.Short() {
-		t.Skip("builds and runs the binary; skipped with -short")
-	}
-	t.Parallel()
-	fx := loadE2EFixture(t)
-	srv := natstest.Start(t)
-	bin := buildBinary(t)
-	cfg := writeE2EConfig(t, fx, pgtest.URL(t))
-	addSource(t, cfg, srv.URL, "fetch_messages: 8; workers: 2; ack_wait: 2s; nak_delay: 100ms")
-	shortQueueWait(t, cfg)
-	appendConfig(t, cfg, "refresh: 1s\n")
+	fx, srv, bin := streamSetup(t)
+	cfg := replicaConfig(t, fx, pgtest.URL(t), srv.URL, "fetch_messages: 8; workers: 2; ack_wait: 2s; nak_delay: 100ms")
 	sc := newStreamClient(t, srv.URL)
 	createTestStream(t, sc)
 	sent := publishFixture(t, sc, 150)
@@ -252,23 +268,14 @@ func TestStreamReplicasSurviveKill(t *testing.T) {
 // for 10 s mid-stream: the messages it cannot commit are handed back and
 // redelivered, and the figures end exact.
 func TestStreamSurvivesDatabaseOutage(t *testing.T) {
-	if testing.Short() {
-		t.Skip("builds and runs the binary; skipped with -short")
-	}
-	t.Parallel()
-	fx := loadE2EFixture(t)
-	srv := natstest.Start(t)
-	bin := buildBinary(t)
+	fx, srv, bin := streamSetup(t)
 	dbURL, err := url.Parse(pgtest.URL(t))
 	if err != nil {
 		t.Fatal(err)
 	}
 	proxy := startProxy(t, dbURL.Host)
 	dbURL.Host = proxy.addr()
-	cfg := writeE2EConfig(t, fx, dbURL.String())
-	addSource(t, cfg, srv.URL, "fetch_messages: 8; workers: 2; ack_wait: 5s; nak_delay: 500ms")
-	shortQueueWait(t, cfg)
-	appendConfig(t, cfg, "refresh: 1s\n")
+	cfg := replicaConfig(t, fx, dbURL.String(), srv.URL, "fetch_messages: 8; workers: 2; ack_wait: 5s; nak_delay: 500ms")
 	sc := newStreamClient(t, srv.URL)
 	d := startDaemon(t, bin, cfg)
 	waitReady(t, d.url)
@@ -297,13 +304,7 @@ func TestStreamSurvivesDatabaseOutage(t *testing.T) {
 // TestStreamReadiness checks that /readyz answers 503 naming the source
 // (and no host) while NATS cannot be reached, and 200 once it is back.
 func TestStreamReadiness(t *testing.T) {
-	if testing.Short() {
-		t.Skip("builds and runs the binary; skipped with -short")
-	}
-	t.Parallel()
-	fx := loadE2EFixture(t)
-	srv := natstest.Start(t)
-	bin := buildBinary(t)
+	fx, srv, bin := streamSetup(t)
 	cfg := writeE2EConfig(t, fx, "")
 	addSource(t, cfg, srv.URL, "")
 	d := startDaemon(t, bin, cfg) // waits for /readyz 200
@@ -336,17 +337,8 @@ func TestStreamReadiness(t *testing.T) {
 // TestStreamGracefulStop sends SIGTERM to a replica mid-stream: it exits
 // cleanly, and a second replica finishes the stream with exact figures.
 func TestStreamGracefulStop(t *testing.T) {
-	if testing.Short() {
-		t.Skip("builds and runs the binary; skipped with -short")
-	}
-	t.Parallel()
-	fx := loadE2EFixture(t)
-	srv := natstest.Start(t)
-	bin := buildBinary(t)
-	cfg := writeE2EConfig(t, fx, pgtest.URL(t))
-	addSource(t, cfg, srv.URL, "fetch_messages: 8; workers: 2; ack_wait: 3s")
-	shortQueueWait(t, cfg)
-	appendConfig(t, cfg, "refresh: 1s\n")
+	fx, srv, bin := streamSetup(t)
+	cfg := replicaConfig(t, fx, pgtest.URL(t), srv.URL, "fetch_messages: 8; workers: 2; ack_wait: 3s")
 	sc := newStreamClient(t, srv.URL)
 	createTestStream(t, sc)
 	publishFixture(t, sc, 150)
