@@ -230,15 +230,35 @@ func (p phase) rate() float64 { return float64(p.lines) / p.took.Seconds() }
 // every answer accounts for its lines.
 func (h *harness) pushHTTP(ctx context.Context, path string, bs []batch, labels bool) (phase, error) {
 	fmt.Fprintf(h.progress, "HTTP %s\n", path)
-	work := make(chan batch)
-	errs := make(chan error, h.o.Clients)
 	start := time.Now()
+	errs, finished := h.fanOut(ctx, bs, func(b batch) error {
+		return h.post(ctx, path, h.t.body("h", b, labels), b.count)
+	})
+	<-finished
+	var err error
+	select {
+	case err = <-errs:
+	default:
+	}
+	if err = errors.Join(err, ctx.Err()); err != nil {
+		return phase{}, err
+	}
+	return phase{lines: lines(bs), took: time.Since(start)}, nil
+}
+
+// fanOut hands the batches to h.o.Clients goroutines that run send on
+// each, and closes finished once they all returned. A goroutine stops at
+// its first error, which goes to errs; handing out stops when ctx ends.
+func (h *harness) fanOut(ctx context.Context, bs []batch, send func(batch) error) (errs <-chan error, finished <-chan struct{}) {
+	work := make(chan batch)
+	errc := make(chan error, h.o.Clients)
+	done := make(chan struct{})
 	var wg sync.WaitGroup
 	for range h.o.Clients {
 		wg.Go(func() {
 			for b := range work {
-				if err := h.post(ctx, path, h.t.body("h", b, labels), b.count); err != nil {
-					errs <- err
+				if err := send(b); err != nil {
+					errc <- err
 					return
 				}
 			}
@@ -254,12 +274,8 @@ func (h *harness) pushHTTP(ctx context.Context, path string, bs []batch, labels 
 			}
 		}
 	}()
-	wg.Wait()
-	close(errs)
-	if err := errors.Join(<-errs, ctx.Err()); err != nil {
-		return phase{}, err
-	}
-	return phase{lines: lines(bs), took: time.Since(start)}, nil
+	go func() { wg.Wait(); close(done) }()
+	return errc, done
 }
 
 // post sends one body until it is answered 200 with every line counted.

@@ -6,7 +6,6 @@ import (
 	"errors"
 	"fmt"
 	"io"
-	"sync"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -43,30 +42,14 @@ func (h *harness) publish(ctx context.Context, subject string, body []byte) erro
 // consumer has committed them all.
 func (h *harness) pushStream(ctx context.Context, subject, set string, bs []batch, labels bool) (phase, error) {
 	fmt.Fprintf(h.progress, "stream %s\n", subject)
-	work := make(chan batch)
-	errs := make(chan error, h.o.Clients)
 	start := time.Now()
-	var wg sync.WaitGroup
-	for range h.o.Clients {
-		wg.Go(func() {
-			for b := range work {
-				if err := h.publish(ctx, subject, h.t.body(set, b, labels)); err != nil {
-					errs <- fmt.Errorf("publish: %w", err)
-					return
-				}
-			}
-		})
-	}
-	var maxLag uint64
-	published := make(chan struct{})
-	go func() {
-		for _, b := range bs {
-			work <- b
+	errs, published := h.fanOut(ctx, bs, func(b batch) error {
+		if err := h.publish(ctx, subject, h.t.body(set, b, labels)); err != nil {
+			return fmt.Errorf("publish: %w", err)
 		}
-		close(work)
-		wg.Wait()
-		close(published)
-	}()
+		return nil
+	})
+	var maxLag uint64
 	p := phase{lines: lines(bs)}
 	for {
 		select {
