@@ -3,8 +3,6 @@ package pgstore
 import (
 	"context"
 	"errors"
-	"fmt"
-	"slices"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -22,7 +20,7 @@ func (s *Store) EnsureModel(ctx context.Context, model string, classes []string,
 		if err != nil {
 			return nil, unavailable("read classes", err)
 		}
-		if len(missing(have, classes)) == 0 {
+		if len(store.MissingClasses(have, classes)) == 0 {
 			return have, nil
 		}
 	} else if !errors.Is(err, store.ErrUnknownModel) {
@@ -44,9 +42,9 @@ func (s *Store) EnsureModel(ctx context.Context, model string, classes []string,
 			if err != nil {
 				return err
 			}
-			add := missing(have, classes)
-			if maxClasses > 0 && len(have)+len(add) > maxClasses {
-				return fmt.Errorf("model %q: registering %d more classes would pass the limit of %d: %w", model, len(add), maxClasses, store.ErrTooManyClasses)
+			add := store.MissingClasses(have, classes)
+			if err := store.CheckClassLimit(model, have, add, maxClasses); err != nil {
+				return err
 			}
 			if len(add) > 0 {
 				if _, err := tx.Exec(ctx, sqlAddClasses, id, len(have), add); err != nil {
@@ -64,17 +62,6 @@ func (s *Store) EnsureModel(ctx context.Context, model string, classes []string,
 	s.models[model] = id
 	s.mu.Unlock()
 	return out, nil
-}
-
-// missing returns the classes of want not in have, once each, in want's order.
-func missing(have, want []string) []string {
-	var out []string
-	for _, c := range want {
-		if !slices.Contains(have, c) && !slices.Contains(out, c) {
-			out = append(out, c)
-		}
-	}
-	return out
 }
 
 // querier is the part of a pool and a transaction that reads need.

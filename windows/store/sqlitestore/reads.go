@@ -4,8 +4,6 @@ import (
 	"context"
 	"database/sql"
 	"errors"
-	"fmt"
-	"slices"
 	"time"
 
 	"github.com/classwatch/classwatch/windows/store"
@@ -17,7 +15,7 @@ import (
 func (s *Store) EnsureModel(ctx context.Context, model string, classes []string, maxClasses int) ([]string, error) {
 	have, err := s.classes(ctx, s.read, model)
 	switch {
-	case err == nil && len(missing(have, classes)) == 0:
+	case err == nil && len(store.MissingClasses(have, classes)) == 0:
 		return have, nil
 	case err != nil && !errors.Is(err, store.ErrUnknownModel):
 		return nil, err
@@ -42,9 +40,9 @@ func (s *Store) EnsureModel(ctx context.Context, model string, classes []string,
 	if have, err = classesOf(ctx, tx, id); err != nil {
 		return nil, err
 	}
-	add := missing(have, classes)
-	if maxClasses > 0 && len(have)+len(add) > maxClasses {
-		return nil, fmt.Errorf("model %q: registering %d more classes would pass the limit of %d: %w", model, len(add), maxClasses, store.ErrTooManyClasses)
+	add := store.MissingClasses(have, classes)
+	if err := store.CheckClassLimit(model, have, add, maxClasses); err != nil {
+		return nil, err
 	}
 	for i, c := range add {
 		if _, err := tx.ExecContext(ctx, sqlInsertClass, id, len(have)+i, c); err != nil {
@@ -58,17 +56,6 @@ func (s *Store) EnsureModel(ctx context.Context, model string, classes []string,
 	s.modelIDs[model] = id
 	s.mu.Unlock()
 	return append(have, add...), nil
-}
-
-// missing returns the classes of want not in have, once each, in want's order.
-func missing(have, want []string) []string {
-	var out []string
-	for _, c := range want {
-		if !slices.Contains(have, c) && !slices.Contains(out, c) {
-			out = append(out, c)
-		}
-	}
-	return out
 }
 
 // classes returns a registered model's class list.
