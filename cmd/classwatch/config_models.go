@@ -194,13 +194,7 @@ func (c config) validateClasses(p *problems, m modelConfig, mp string) {
 	if len(m.Classes) < 2 && !autoRegister {
 		p.add(mp+".classes", "a model needs at least two classes unless it sets auto_register")
 	}
-	maxClasses := c.MaxClasses
-	if m.MaxClasses != nil {
-		maxClasses = *m.MaxClasses
-		if maxClasses < 0 {
-			p.add(mp+".max_classes", "must not be negative")
-		}
-	}
+	maxClasses := modelValue(p, mp+".max_classes", m.MaxClasses, c.MaxClasses)
 	if maxClasses > 0 && len(m.Classes) > maxClasses {
 		p.add(mp+".classes", "%d classes pass max_classes %d", len(m.Classes), maxClasses)
 	}
@@ -222,13 +216,7 @@ func (c config) validateLabelPolicy(p *problems, m modelConfig, mp string) {
 	if m.EarlyLabelTTL != nil && *m.EarlyLabelTTL < 0 {
 		p.add(mp+".early_label_ttl", "must not be negative")
 	}
-	retention := c.Retention
-	if m.Retention != nil {
-		retention = *m.Retention
-		if retention < 0 {
-			p.add(mp+".retention", "must not be negative")
-		}
-	}
+	retention := modelValue(p, mp+".retention", m.Retention, c.Retention)
 	if retention > 0 && m.LabelTimeout > 0 && retention <= m.LabelTimeout {
 		key := mp + ".retention"
 		if m.Retention == nil {
@@ -294,4 +282,16 @@ func checkWindows(p *problems, ws []windowConfig, bucket time.Duration, path str
 		}
 		seen[w.Name] = true
 	}
+}
+
+// modelValue returns a model's own setting when it has one, reporting a
+// negative one under key, else the config-wide default.
+func modelValue[T ~int | ~int64](p *problems, key string, own *T, def T) T {
+	if own == nil {
+		return def
+	}
+	if *own < 0 {
+		p.add(key, "must not be negative")
+	}
+	return *own
 }
