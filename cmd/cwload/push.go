@@ -62,135 +62,147 @@ func (h *harness) runPush(ctx context.Context) (_ *pushResults, err error) {
 	fmt.Fprintf(h.progress, "ingest benchmark: %d predictions and %d labels of %d models, batches of %d lines, %d clients\n",
 		res.Predictions, res.Labels, o.Models, o.Batch, o.Clients)
 
-	storeURL, err := h.srv.create(ctx)
-	if err != nil {
+	r := pushRun{sc: sc}
+	if r.st, err = h.openPushStore(ctx, sc); err != nil {
 		return res, err
 	}
-	st, err := pgstore.Open(ctx, storeURL, pgstore.Options{})
-	if err != nil {
-		return res, err
-	}
-	defer func() { err = errors.Join(err, st.Close()) }()
-	if err := st.Migrate(ctx); err != nil {
-		return res, fmt.Errorf("migrate store: %w", err)
-	}
-	for _, m := range sc.models {
-		if _, err := st.EnsureModel(ctx, m, sc.classes, 0); err != nil {
-			return res, fmt.Errorf("register model: %w", err)
-		}
-	}
-
-	d, err := h.startDaemon(ctx, "ingest", sc, pushWindows())
-	if err != nil {
+	defer func() { err = errors.Join(err, r.st.Close()) }()
+	if r.d, err = h.startDaemon(ctx, "ingest", sc, pushWindows()); err != nil {
 		return res, err
 	}
 	defer func() {
 		if err != nil {
-			err = errors.Join(err, d.LogTail())
+			err = errors.Join(err, r.d.LogTail())
 		}
-		err = errors.Join(err, d.Stop())
+		err = errors.Join(err, r.d.Stop())
 	}()
-	rss := sampleRSS(d.PID, 250*time.Millisecond)
-	defer func() { err = errors.Join(err, rss.close()) }()
-	if res.RSSReady, _, err = memory(d.PID); err != nil {
+	r.rss = sampleRSS(r.d.PID, 250*time.Millisecond)
+	defer func() { err = errors.Join(err, r.rss.close()) }()
+	if res.RSSReady, _, err = memory(r.d.PID); err != nil {
 		return res, err
 	}
-	cl := newClient(d.Base, o.Clients)
-	defer cl.close()
-	lines := func(refs []batchRef) func(int) int { return func(i int) int { return len(refs[i].list) } }
+	r.cl = newClient(r.d.Base, o.Clients)
+	defer r.cl.close()
 
-	// Predictions: the store phase, then the same batches over HTTP.
-	storePreds := make([][]store.Prediction, len(predRefs))
-	for i, b := range predRefs {
-		for _, j := range b.list {
-			e := sc.event(b.model, j)
-			storePreds[i] = append(storePreds[i], sc.prediction(&e))
-		}
-	}
-	runtime.GC()
-	res.StorePredictions, err = runPhase(ctx, "store predictions", len(predRefs), o.Clients, lines(predRefs), meter{srv: h.srv},
-		func(ctx context.Context, i int) (time.Duration, int, error) {
-			start := time.Now()
-			r, err := st.IngestPredictions(ctx, storePreds[i], time.Now())
-			took := time.Since(start)
-			if err != nil {
-				return 0, 0, err
-			}
-			if n := count(r.Outcomes, store.PredictionStored); n != len(storePreds[i]) {
-				return 0, 0, fmt.Errorf("%d of %d predictions stored", n, len(storePreds[i]))
-			}
-			return took, 0, nil
-		}, h.progress)
-	if err != nil {
+	preds := lineKind[store.Prediction]{name: "predictions", path: "/v1/predictions", outcome: "stored",
+		line: sc.prediction, appendLine: sc.appendPrediction,
+		ingest: func(ctx context.Context, ps []store.Prediction) (int, error) {
+			out, err := r.st.IngestPredictions(ctx, ps, time.Now())
+			return count(out.Outcomes, store.PredictionStored), err
+		}}
+	if res.StorePredictions, res.HTTPPredictions, err = pushPhases(ctx, h, r, preds, predRefs); err != nil {
 		return res, err
 	}
-	// Store batches go out of use here; the GC before each phase frees
-	// them, so that neither phase pays for the other's data.
-	bodies := make([][]byte, len(predRefs))
-	for i, b := range predRefs {
-		for _, j := range b.list {
-			e := sc.event(b.model, j)
-			bodies[i] = sc.appendPrediction(bodies[i], &e)
-		}
-	}
-	runtime.GC()
-	res.HTTPPredictions, err = h.httpPhase(ctx, "http predictions", cl, d, rss, "/v1/predictions", bodies, lines(predRefs))
-	if err != nil {
+	labels := lineKind[store.Label]{name: "labels", path: "/v1/labels", outcome: "matched",
+		line: sc.label, appendLine: sc.appendLabel,
+		ingest: func(ctx context.Context, ls []store.Label) (int, error) {
+			out, err := r.st.IngestLabels(ctx, ls, time.Now())
+			return count(out.Outcomes, store.LabelMatched), err
+		}}
+	if res.StoreLabels, res.HTTPLabels, err = pushPhases(ctx, h, r, labels, labelRefs); err != nil {
 		return res, err
 	}
-
-	// Labels, in the same way.
-	storeLabels := make([][]store.Label, len(labelRefs))
-	for i, b := range labelRefs {
-		for _, j := range b.list {
-			e := sc.event(b.model, j)
-			storeLabels[i] = append(storeLabels[i], sc.label(&e))
-		}
-	}
-	runtime.GC()
-	res.StoreLabels, err = runPhase(ctx, "store labels", len(labelRefs), o.Clients, lines(labelRefs), meter{srv: h.srv},
-		func(ctx context.Context, i int) (time.Duration, int, error) {
-			start := time.Now()
-			r, err := st.IngestLabels(ctx, storeLabels[i], time.Now())
-			took := time.Since(start)
-			if err != nil {
-				return 0, 0, err
-			}
-			if n := count(r.Outcomes, store.LabelMatched); n != len(storeLabels[i]) {
-				return 0, 0, fmt.Errorf("%d of %d labels matched", n, len(storeLabels[i]))
-			}
-			return took, 0, nil
-		}, h.progress)
-	if err != nil {
-		return res, err
-	}
-	bodies = make([][]byte, len(labelRefs))
-	for i, b := range labelRefs {
-		for _, j := range b.list {
-			e := sc.event(b.model, j)
-			bodies[i] = sc.appendLabel(bodies[i], &e)
-		}
-	}
-	runtime.GC()
-	res.HTTPLabels, err = h.httpPhase(ctx, "http labels", cl, d, rss, "/v1/labels", bodies, lines(labelRefs))
-	if err != nil {
-		return res, err
-	}
-
 	res.RSSPeak = max(res.HTTPPredictions.PeakRSS, res.HTTPLabels.PeakRSS)
-	labeled, checked, err := h.check(ctx, cl, sc)
+	labeled, checked, err := h.check(ctx, r.cl, sc)
 	res.WindowsChecked = checked
 	if err != nil {
 		return res, err
 	}
-	if err := checkStore(ctx, st, sc, labeled); err != nil {
+	if err := checkStore(ctx, r.st, sc, labeled); err != nil {
 		return res, err
 	}
 	res.Checked = true
-	if res.RSSEnd, res.RSSHWM, err = memory(d.PID); err != nil {
+	if res.RSSEnd, res.RSSHWM, err = memory(r.d.PID); err != nil {
 		return res, err
 	}
 	return res, nil
+}
+
+// pushRun is what the ingest benchmark's phases share: the store of the
+// store phases and the daemon of the HTTP phases, with its client and
+// memory sampler.
+type pushRun struct {
+	sc  *scenario
+	st  *pgstore.Store
+	d   *loadkit.Daemon
+	cl  *client
+	rss *rssSampler
+}
+
+// openPushStore opens the store of the store phases on a fresh database,
+// migrated, with the scenario's models registered.
+func (h *harness) openPushStore(ctx context.Context, sc *scenario) (*pgstore.Store, error) {
+	storeURL, err := h.srv.create(ctx)
+	if err != nil {
+		return nil, err
+	}
+	st, err := pgstore.Open(ctx, storeURL, pgstore.Options{})
+	if err != nil {
+		return nil, err
+	}
+	if err := st.Migrate(ctx); err != nil {
+		return nil, errors.Join(fmt.Errorf("migrate store: %w", err), st.Close())
+	}
+	for _, m := range sc.models {
+		if _, err := st.EnsureModel(ctx, m, sc.classes, 0); err != nil {
+			return nil, errors.Join(fmt.Errorf("register model: %w", err), st.Close())
+		}
+	}
+	return st, nil
+}
+
+// refLines returns the line count of batch i of refs.
+func refLines(refs []batchRef) func(int) int { return func(i int) int { return len(refs[i].list) } }
+
+// lineKind says how pushPhases makes and stores one kind of line.
+type lineKind[T any] struct {
+	name, path string // "predictions", "/v1/predictions"
+	outcome    string // what ingest counts: "stored"
+	line       func(e *event) T
+	appendLine func(b []byte, e *event) []byte
+	// ingest stores lines and returns how many took the expected outcome.
+	ingest func(ctx context.Context, lines []T) (int, error)
+}
+
+// pushPhases runs the store phase of one kind of line, then the same
+// batches over HTTP.
+func pushPhases[T any](ctx context.Context, h *harness, r pushRun, k lineKind[T], refs []batchRef) (storePh, httpPh phase, err error) {
+	batches := make([][]T, len(refs))
+	for i, b := range refs {
+		for _, j := range b.list {
+			e := r.sc.event(b.model, j)
+			batches[i] = append(batches[i], k.line(&e))
+		}
+	}
+	runtime.GC()
+	storePh, err = runPhase(ctx, "store "+k.name, len(refs), h.opts.Clients, refLines(refs), meter{srv: h.srv},
+		func(ctx context.Context, i int) (time.Duration, int, error) {
+			start := time.Now()
+			n, err := k.ingest(ctx, batches[i])
+			took := time.Since(start)
+			if err != nil {
+				return 0, 0, err
+			}
+			if n != len(batches[i]) {
+				return 0, 0, fmt.Errorf("%d of %d %s %s", n, len(batches[i]), k.name, k.outcome)
+			}
+			return took, 0, nil
+		}, h.progress)
+	if err != nil {
+		return storePh, phase{}, err
+	}
+	// Store batches go out of use here; the GC before each phase frees
+	// them, so that neither phase pays for the other's data.
+	bodies := make([][]byte, len(refs))
+	for i, b := range refs {
+		for _, j := range b.list {
+			e := r.sc.event(b.model, j)
+			bodies[i] = k.appendLine(bodies[i], &e)
+		}
+	}
+	runtime.GC()
+	httpPh, err = h.httpPhase(ctx, "http "+k.name, r.cl, r.d, r.rss, k.path, bodies, refLines(refs))
+	return storePh, httpPh, err
 }
 
 // httpPhase pushes bodies to path with the harness's clients.
