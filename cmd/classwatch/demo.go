@@ -66,19 +66,10 @@ func playDemo(ctx context.Context, o demoOptions, stdout, stderr io.Writer) erro
 		Seed:       o.seed,
 		DriftAfter: sim.DefaultDriftAfter,
 	}
-	text, err := sim.Config(o.listen, dir, opts)
+	cfgPath, cfg, err := writeDemoConfig(o.listen, dir, opts)
 	if err != nil {
-		return fmt.Errorf("demo config: %w", err)
+		return err
 	}
-	cfgPath := filepath.Join(dir, "classwatch.yml")
-	if err := os.WriteFile(cfgPath, []byte(text), 0o600); err != nil {
-		return fmt.Errorf("demo: %w", err)
-	}
-	cfg, err := loadConfig(configSource{path: cfgPath, secrets: true})
-	if err != nil {
-		return fmt.Errorf("demo config: %w", err)
-	}
-	cfg.Database = "" // the demo never touches a configured database
 	logOut := io.Discard
 	if o.verbose {
 		logOut = stderr
@@ -140,6 +131,25 @@ Press Ctrl-C to stop.
 	err = d.serve(ctx)
 	<-simDone
 	return err
+}
+
+// writeDemoConfig writes the simulation's config into dir and loads it,
+// with the database cleared: the demo keeps its data in dir.
+func writeDemoConfig(listen, dir string, opts sim.Options) (string, config, error) {
+	text, err := sim.Config(listen, dir, opts)
+	if err != nil {
+		return "", config{}, fmt.Errorf("demo config: %w", err)
+	}
+	cfgPath := filepath.Join(dir, "classwatch.yml")
+	if err := os.WriteFile(cfgPath, []byte(text), 0o600); err != nil {
+		return "", config{}, fmt.Errorf("demo: %w", err)
+	}
+	cfg, err := loadConfig(configSource{path: cfgPath, secrets: true})
+	if err != nil {
+		return "", config{}, fmt.Errorf("demo config: %w", err)
+	}
+	cfg.Database = "" // the demo never touches a configured database
+	return cfgPath, cfg, nil
 }
 
 // demoReportQuery is the query of the demo's printed audit report: the
