@@ -71,7 +71,14 @@ models:
 	fmt.Fprintf(&b, "  - name: %s\n    classes: [%s]\n", TicketRouter, strings.Join(ticketClasses(), ", "))
 	fmt.Fprintf(&b, "  - name: %s\n    classes: [%s]\n    label_timeout: %s\n    default_label: %s\n    reference_window: %s\n",
 		CardScreen, strings.Join(cardClasses(), ", "), CardLabelTimeout, Legit, MaturedWindow)
-	fmt.Fprintf(&b, `alerts:
+	b.WriteString(demoAlerts(from, to, every))
+	return b.String(), nil
+}
+
+// demoAlerts is the alerts block of the demo config: every is the rules'
+// schedule; from and to bound the recall drop's baseline.
+func demoAlerts(from, to time.Time, every string) string {
+	return fmt.Sprintf(`alerts:
   # Early warning: no label needed, only the predicted mix of the last day
   # against the matured reference day's confusion matrix.
   - name: %s
@@ -132,7 +139,6 @@ models:
 		RecallRule, CardScreen, Fraud, stamp(from), stamp(to), every,
 		CardScreen, Fraud, every,
 		TicketRouter, every, TicketRouter, every)
-	return b.String(), nil
 }
 
 // Names in the demo config that the demo's story refers to.
