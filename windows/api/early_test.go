@@ -33,32 +33,7 @@ func TestMatrixEarlyWarning(t *testing.T) {
 	}
 	b := serve(t, s, tr)
 
-	// Minutes 10–39 (the reference window once the watermark is 13:10):
-	// 40 labeled predictions; minutes 40–69: 30 unlabeled ones, more of
-	// them fraud.
-	var preds []store.Prediction
-	var labels []store.Label
-	for i := range 40 {
-		actual, predicted := "legit", "legit"
-		switch {
-		case i < 12:
-			actual, predicted = "fraud", "fraud"
-		case i < 15:
-			actual = "fraud"
-		case i < 19:
-			predicted = "fraud"
-		}
-		id := fmt.Sprintf("ref-%02d", i)
-		preds = append(preds, store.Prediction{ID: id, At: at(10 + i*29/40), Predicted: predicted})
-		labels = append(labels, store.Label{ID: id, Actual: actual, At: at(300)})
-	}
-	for i := range 30 {
-		predicted := "legit"
-		if i%2 == 0 {
-			predicted = "fraud"
-		}
-		preds = append(preds, store.Prediction{ID: fmt.Sprintf("new-%02d", i), At: at(40 + i), Predicted: predicted})
-	}
+	preds, labels := earlyTraffic()
 	b.predict(t, "card-screen", cardClasses, preds...)
 	b.label(t, "card-screen", labels...)
 
@@ -109,4 +84,32 @@ func TestMatrixEarlyWarning(t *testing.T) {
 			t.Errorf("window %s: %d reliability bins, fraud estimate %v", w.Name, len(w.Metrics.Reliability), w.Metrics.PerClass["fraud"].Estimate)
 		}
 	}
+}
+
+// earlyTraffic is TestMatrixEarlyWarning's traffic. Minutes 10–39 (the
+// reference window once the watermark is 13:10): 40 labeled predictions;
+// minutes 40–69: 30 unlabeled ones, more of them fraud.
+func earlyTraffic() (preds []store.Prediction, labels []store.Label) {
+	for i := range 40 {
+		actual, predicted := "legit", "legit"
+		switch {
+		case i < 12:
+			actual, predicted = "fraud", "fraud"
+		case i < 15:
+			actual = "fraud"
+		case i < 19:
+			predicted = "fraud"
+		}
+		id := fmt.Sprintf("ref-%02d", i)
+		preds = append(preds, store.Prediction{ID: id, At: at(10 + i*29/40), Predicted: predicted})
+		labels = append(labels, store.Label{ID: id, Actual: actual, At: at(300)})
+	}
+	for i := range 30 {
+		predicted := "legit"
+		if i%2 == 0 {
+			predicted = "fraud"
+		}
+		preds = append(preds, store.Prediction{ID: fmt.Sprintf("new-%02d", i), At: at(40 + i), Predicted: predicted})
+	}
+	return preds, labels
 }
