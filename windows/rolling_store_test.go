@@ -363,24 +363,7 @@ func testExactUnderRefresh(t *testing.T, s store.Store) {
 		lane[i].maxPreds, lane[i].maxLabels = 3, 3
 	}
 
-	readersDone := make(chan struct{})
-	var readers sync.WaitGroup
-	readers.Go(func() {
-		for {
-			select {
-			case <-readersDone:
-				return
-			default:
-			}
-			for _, v := range tr.Views(model) {
-				_ = v.Matrix.Total()
-			}
-		}
-	})
-	defer func() {
-		close(readersDone)
-		readers.Wait()
-	}()
+	defer readViews(tr, model)()
 
 	var commits atomic.Int64
 	commit := func(txFunc func() (store.Changes, map[string]time.Time, error)) error {
@@ -429,6 +412,29 @@ func testExactUnderRefresh(t *testing.T, s store.Store) {
 	}
 	checkAgainstStore(t, s, tr, model)
 	checkWatermark(t, s, tr, model)
+}
+
+// readViews reads model's views in a loop until the returned function is
+// called, which waits for the reader to stop.
+func readViews(tr *windows.Tracker, model string) (stop func()) {
+	done := make(chan struct{})
+	var reader sync.WaitGroup
+	reader.Go(func() {
+		for {
+			select {
+			case <-done:
+				return
+			default:
+			}
+			for _, v := range tr.Views(model) {
+				_ = v.Matrix.Total()
+			}
+		}
+	})
+	return func() {
+		close(done)
+		reader.Wait()
+	}
 }
 
 // checkWatermark compares model's watermark in tr with the one the store's
