@@ -59,6 +59,9 @@ type MetricDef struct {
 	// on, for minimum-count checks; nil when Counts is set. A metric with
 	// neither is not offered to alert rules.
 	Judged func(ms *Metrics, m *Matrix, k int) int64
+	// FromScores marks a metric computed from the score aggregates
+	// (README.md "Early warning"), undefined for unscored predictions.
+	FromScores bool
 }
 
 // PromLower names the family of the interval's lower bound.
@@ -129,7 +132,7 @@ func MetricDefs() []MetricDef {
 			Judged: labeled,
 		},
 		{
-			Name: "scored", Title: "labeled with scores", Prom: "classwatch_window_scored",
+			Name: "scored", Title: "labeled with scores", Prom: "classwatch_window_scored", FromScores: true,
 			Help: "Labeled predictions made in the window that carry scores.",
 			Value: func(ms *Metrics, _ int) *float64 {
 				if ms.Scores == nil {
@@ -140,13 +143,13 @@ func MetricDefs() []MetricDef {
 			},
 		},
 		{
-			Name: "brier", Title: "Brier score", Prom: "classwatch_brier_score", Max: 2,
+			Name: "brier", Title: "Brier score", Prom: "classwatch_brier_score", Max: 2, FromScores: true,
 			Help:   "Multi-class Brier score of the window's labeled predictions with scores: mean of the sum over classes of (score - 1[actual]) squared, in [0, 2].",
 			Value:  func(ms *Metrics, _ int) *float64 { return ms.Brier },
 			Judged: scored,
 		},
 		{
-			Name: "calibration_error", Title: "calibration error", Prom: "classwatch_calibration_error_ratio",
+			Name: "calibration_error", Title: "calibration error", Prom: "classwatch_calibration_error_ratio", FromScores: true,
 			Help:   "Expected calibration error of the predicted class's score over 10 equal-width bins, on the window's labeled predictions with scores.",
 			Value:  func(ms *Metrics, _ int) *float64 { return ms.CalibrationError },
 			Judged: scored,
@@ -220,7 +223,7 @@ func MetricDefs() []MetricDef {
 			Judged: func(ms *Metrics, _ *Matrix, k int) int64 { return ms.PerClass[k].PredictedCount },
 		},
 		{
-			Name: "score_shift", Title: "score shift", Prom: "classwatch_score_shift_distance", Scope: ScopeClass, Max: math.Sqrt(math.Ln2),
+			Name: "score_shift", Title: "score shift", Prom: "classwatch_score_shift_distance", Scope: ScopeClass, Max: math.Sqrt(math.Ln2), FromScores: true,
 			Help:   "Jensen-Shannon distance (natural logarithm, in [0, 0.833]) between the class's score histogram in the window and in the reference window.",
 			Value:  func(ms *Metrics, k int) *float64 { return ms.PerClass[k].ScoreShift },
 			Judged: predictions,

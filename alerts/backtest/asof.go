@@ -64,8 +64,8 @@ func (a *asOf) apply(e *store.Event) {
 	p := a.class(e.Predicted)
 	a.applyScores(e)
 	if e.Kind == store.EventPrediction {
-		a.add(b, predictedOnly, p, 1)
-		a.info.Predictions++
+		a.add(b, predictedOnly, p, e.Count)
+		a.info.Predictions += e.Count
 		if e.PredictionAt.After(a.info.LatestAt) {
 			a.info.LatestAt = e.PredictionAt
 		}

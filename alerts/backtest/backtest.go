@@ -104,6 +104,9 @@ type plan struct {
 	rule     alerts.Rule
 	schedule cron.Schedule
 	report   *RuleReport
+	// grain is the greatest common divisor of the rule's evaluation
+	// times, in microseconds since the Unix epoch (0 for none).
+	grain int64
 }
 
 // Run replays the rules. Errors wrapping ErrInput are the caller's to fix.
@@ -181,6 +184,7 @@ func plansOf(opts Options, rep *Report) ([]*plan, error) {
 		p.report = &rep.Rules[i]
 		for t := first(p.schedule, opts.From); t.Before(opts.To); t = p.schedule.Next(t) {
 			p.report.Evaluations++
+			p.grain = gcd(p.grain, t.UnixMicro())
 		}
 	}
 	return plans, nil
@@ -198,4 +202,13 @@ func first(s cron.Schedule, from time.Time) time.Time {
 		return from.Truncate(time.Second).Add(time.Second)
 	}
 	return s.Next(from.Add(-time.Nanosecond))
+}
+
+// gcd returns the greatest common divisor of a and b, which are not
+// negative; gcd(0, b) is b.
+func gcd(a, b int64) int64 {
+	for b != 0 {
+		a, b = b, a%b
+	}
+	return a
 }

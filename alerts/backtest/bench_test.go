@@ -59,7 +59,12 @@ func BenchmarkReplay(b *testing.B) {
 	b.Run("read", func(b *testing.B) {
 		for range b.N {
 			events = 0
-			q := store.EventQuery{Model: "card-screen", From: start, To: opts.To, Until: opts.To}
+			plans, err := plansOf(opts, &Report{})
+			if err != nil {
+				b.Fatal(err)
+			}
+			// What the replay reads: grouped predictions, no scores.
+			q := eventQuery(opts, "card-screen", start, 5*time.Minute, plans)
 			if err := st.Events(ctx, q, func(*store.Event) error { events++; return nil }); err != nil {
 				b.Fatal(err)
 			}

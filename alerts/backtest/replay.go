@@ -51,9 +51,7 @@ func replayModel(ctx context.Context, opts Options, info store.ModelInfo, plans 
 
 	rctx, cancel := context.WithCancel(ctx)
 	defer cancel()
-	f := newFeed(rctx, opts.Store, store.EventQuery{
-		Model: info.Name, From: start, To: windows.BucketStart(opts.To, mo.Bucket).Add(mo.Bucket), Until: opts.To, Scores: true,
-	})
+	f := newFeed(rctx, opts.Store, eventQuery(opts, info.Name, start, mo.Bucket, plans))
 	var pending store.Changes
 	flush := func(at time.Time) {
 		clock = at
@@ -105,6 +103,31 @@ func replayModel(ctx context.Context, opts Options, info store.ModelInfo, plans 
 	return nil
 }
 
+// eventQuery selects the events the replay of plans needs: scores only
+// when a rule reads them, and prediction events grouped by the longest
+// step that divides every evaluation time (store.EventQuery.Step), so
+// that the counts at each evaluation are the same as event by event.
+func eventQuery(opts Options, model string, start time.Time, bucket time.Duration, plans []*plan) store.EventQuery {
+	q := store.EventQuery{Model: model, From: start, To: windows.BucketStart(opts.To, bucket).Add(bucket), Until: opts.To}
+	var grain int64
+	for _, p := range plans {
+		grain = gcd(grain, p.grain)
+		q.Scores = q.Scores || readsScores(p.rule)
+	}
+	q.Step = time.Duration(grain) * time.Microsecond
+	return q
+}
+
+// readsScores reports whether a rule reads the score aggregates: a
+// score_shift rule, or a rule on a metric computed from scores.
+func readsScores(r alerts.Rule) bool {
+	if r.Kind == alerts.KindScoreShift {
+		return true
+	}
+	d, ok := windows.LookupMetric(r.Metric)
+	return ok && d.FromScores
+}
+
 // readError explains a failed event read; a purge that took rows the
 // replay needs is the caller's to fix (a shorter window or a later --from).
 func readError(err error, model string, start time.Time) error {
@@ -149,13 +172,13 @@ func earliest(next []time.Time, to time.Time) (time.Time, bool) {
 // addChanges adds an event's count changes to ch.
 func addChanges(ch *store.Changes, model string, e *store.Event) {
 	if e.Kind == store.EventPrediction {
-		ch.Predicted = append(ch.Predicted, store.PredictedDelta{Model: model, Bucket: e.Bucket, Predicted: e.Predicted, N: 1})
+		ch.Predicted = append(ch.Predicted, store.PredictedDelta{Model: model, Bucket: e.Bucket, Predicted: e.Predicted, N: e.Count})
 		return
 	}
 	if e.Old != "" {
 		ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: e.Bucket, Actual: e.Old, Predicted: e.Predicted, N: -1})
 	}
-	ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: e.Bucket, Actual: e.Actual, Predicted: e.Predicted, N: 1})
+	ch.Cells = append(ch.Cells, store.CellDelta{Model: model, Bucket: e.Bucket, Actual: e.Actual, Predicted: e.Predicted, N: e.Count})
 }
 
 // pendingLen is the number of changes gathered in ch.

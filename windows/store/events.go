@@ -49,6 +49,10 @@ type Event struct {
 	// events only.
 	Old, Actual string
 	Implied     bool
+	// Count is how many predictions the event stands for: 1, or more for
+	// a grouped prediction event (see EventQuery.Step). Label events are
+	// never grouped.
+	Count int64
 }
 
 // EventQuery selects the events of a model's predictions whose bucket
@@ -61,4 +65,12 @@ type EventQuery struct {
 	Until    time.Time
 	// Scores asks for each event's prediction scores.
 	Scores bool
+	// Step, when positive and Scores is unset, lets the store group the
+	// prediction events of one (bucket, segment, predicted) whose ats lie
+	// in the same step: the interval (k·Step − Step, k·Step] counted from
+	// the Unix epoch. A group comes as one event with At = k·Step,
+	// PredictionAt the latest of its ats and Count its size, so folding
+	// the events up to any multiple of Step gives the same counts as
+	// without grouping. A store may ignore Step.
+	Step time.Duration
 }

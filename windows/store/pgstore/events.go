@@ -11,32 +11,57 @@ import (
 	"github.com/classwatch/classwatch/windows/store"
 )
 
-// Events reads two streams, each sorted by the database on a connection
-// of its own (so the two sorts run in parallel) from one exported
-// snapshot: predictions by at, and label changes by the time they took
-// effect. The merge puts a prediction before a label change of the same
-// time.
+// Events reads streams from one exported snapshot, each on a connection
+// of its own so that the server works on them at once: predictions by at
+// (or grouped by step, see store.EventQuery.Step), and the label changes
+// of each day's predictions by the time they took effect, one cursor per
+// day of label_versions, the days dealt to labelStreams connections (see
+// labelDays). Sorting a day at a time keeps each sort small, and a day's
+// cursor is opened only when its stream reaches the day's start: no event
+// of a day's predictions comes before it, since a prediction's bucket
+// starts at or before its at.
 const (
 	// sqlEventPredictions lists q's predictions by at ($1 model, $2 and
 	// $3 the bucket range, $4 until, $5 whether to send scores).
-	sqlEventPredictions = `SELECT at, bucket, segment, predicted, CASE WHEN $5 THEN scores END
+	sqlEventPredictions = `SELECT at, at, bucket, segment, predicted, CASE WHEN $5 THEN scores END, 1::bigint
 FROM predictions
 WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND at < $4
 ORDER BY at`
-	// sqlEventLabels lists q's label changes by the time they took effect.
-	// v keeps the implied version only when no real version is at least
-	// as old (the real one wins from its at on); s puts each prediction's
-	// remaining versions in the order they become current, (at, actual),
-	// and pairs each with the one before it; versions that keep the class
-	// make no event. A version takes effect at the later of its at and its
-	// prediction's.
-	sqlEventLabels = `WITH v AS (
+	// sqlEventPredictionGroups lists q's predictions grouped by step ($5,
+	// in microseconds): the end of the step that holds at, the latest at,
+	// the group and its count.
+	sqlEventPredictionGroups = `SELECT date_bin($5 * interval '1 microsecond', at - interval '1 microsecond', timestamptz 'epoch')
+         + $5 * interval '1 microsecond' AS g,
+       max(at), bucket, segment, predicted, NULL::jsonb, count(*)
+FROM predictions
+WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND at < $4
+GROUP BY 1, bucket, segment, predicted
+ORDER BY 1`
+	// sqlEventLabelsDay lists the label changes of the predictions whose
+	// bucket lies in [$2, $3), one day at most, by the time they took
+	// effect. v holds the day's versions. A prediction with one version
+	// (none numbered above 1, see versionRows) changes once, from no
+	// label; for the others, w keeps the implied version only when no
+	// real version is at least as old (the real one wins from its at on),
+	// and the window puts the remaining versions in the order they become
+	// current, (at, actual), pairing each with the one before it. Versions
+	// that keep the class make no event. A version takes effect at the
+	// later of its at and its prediction's.
+	sqlEventLabelsDay = `WITH v AS MATERIALIZED (
+    SELECT pkey, seq, at, implied, actual FROM label_versions
+    WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND at < $4
+), m AS (
+    SELECT DISTINCT pkey FROM v WHERE seq > 1
+), w AS (
     SELECT pkey, at, implied, actual,
            min(CASE WHEN NOT implied THEN at END) OVER (PARTITION BY pkey) AS first_real
-    FROM label_versions WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND at < $4
+    FROM v WHERE pkey IN (SELECT pkey FROM m)
 ), s AS (
-    SELECT pkey, at, implied, actual, lag(actual) OVER (PARTITION BY pkey ORDER BY at, actual) AS old
-    FROM v WHERE NOT implied OR first_real IS NULL OR first_real > at
+    SELECT pkey, at, implied, actual, NULL::text AS old FROM v
+    WHERE NOT EXISTS (SELECT 1 FROM m WHERE m.pkey = v.pkey)
+    UNION ALL
+    SELECT pkey, at, implied, actual, lag(actual) OVER (PARTITION BY pkey ORDER BY at, actual)
+    FROM w WHERE NOT implied OR first_real IS NULL OR first_real > at
 ), p AS (
     SELECT pkey, at, bucket, segment, predicted, scores FROM predictions
     WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND at < $4
@@ -46,9 +71,11 @@ SELECT greatest(s.at, p.at) AS t, p.at, p.bucket, p.segment, p.predicted,
 FROM s JOIN p ON p.pkey = s.pkey
 WHERE greatest(s.at, p.at) < $4 AND s.old IS DISTINCT FROM s.actual
 ORDER BY t`
+	// sqlEventDays lists the model's days with raw rows in [$2, $3).
+	sqlEventDays      = `SELECT day FROM raw_partitions WHERE model_id = $1 AND day >= $2 AND day < $3 ORDER BY day`
 	sqlExportSnapshot = `SELECT pg_export_snapshot()`
-	// sqlEventWorkMem lets each stream sort in memory up to this size
-	// before it spills to disk.
+	// sqlEventWorkMem lets each sort and hash work in memory up to this
+	// size before it spills to disk.
 	sqlEventWorkMem = `SET LOCAL work_mem = '128MB'`
 	// sqlEventNoNestLoop keeps the planner from joining label versions to
 	// predictions row by row, which it picks when a bulk load has not
@@ -56,11 +83,12 @@ ORDER BY t`
 	sqlEventNoNestLoop = `SET LOCAL enable_nestloop = off`
 )
 
-// eventChunk is how many events a stream hands to the merge at a time.
+// eventChunk is how many events a stream reads at a time.
 const eventChunk = 2048
 
 // Events streams q's events in time order; see store.Store. It fails with
-// store.ErrPurged when q.From lies before the model's purge cutoff.
+// store.ErrPurged when q.From lies before the model's purge cutoff. It
+// groups prediction events when q.Step is positive and q.Scores unset.
 func (s *Store) Events(ctx context.Context, q store.EventQuery, fn func(*store.Event) error) error {
 	id, err := s.modelID(ctx, q.Model)
 	if err != nil {
@@ -74,36 +102,88 @@ func (s *Store) Events(ctx context.Context, q store.EventQuery, fn func(*store.E
 		return fmt.Errorf("read events of %s from %s: raw rows before %s are gone: %w",
 			q.Model, q.From.UTC().Format(time.RFC3339), purged.UTC().Format(time.RFC3339), store.ErrPurged)
 	}
+	// Each day's prediction lookup goes through the bucket index, whose
+	// newest block ranges stay unsummarized (matching every day) until
+	// summarized.
+	if err := s.summarize(ctx); err != nil {
+		return err
+	}
 	ctx, cancel := context.WithCancel(ctx)
 	defer cancel()
-	opts := pgx.TxOptions{IsoLevel: pgx.RepeatableRead, AccessMode: pgx.ReadOnly}
-	first, err := s.pool.BeginTx(ctx, opts)
+	txs, err := s.sharedSnapshot(ctx, 1+labelStreams)
 	if err != nil {
-		return unavailable("begin events read", err)
+		return err
 	}
-	defer first.Rollback(context.WithoutCancel(ctx))
-	second, err := s.pool.BeginTx(ctx, opts)
+	for _, tx := range txs {
+		defer tx.Rollback(context.WithoutCancel(ctx))
+		for _, set := range []string{sqlEventWorkMem, sqlEventNoNestLoop} {
+			if _, err := tx.Exec(ctx, set); err != nil {
+				return unavailable("set read options", err)
+			}
+		}
+	}
+	from, to, until := micro(q.From), micro(q.To), micro(q.Until)
+	rows, err := txs[0].Query(ctx, sqlEventDays, id, dayOf(from), to)
 	if err != nil {
-		return unavailable("begin events read", err)
+		return unavailable("list event days", err)
 	}
-	defer second.Rollback(context.WithoutCancel(ctx))
-	var snapshot string
-	if err := first.QueryRow(ctx, sqlExportSnapshot).Scan(&snapshot); err != nil {
-		return unavailable("export snapshot", err)
+	days, err := pgx.CollectRows(rows, pgx.RowTo[time.Time])
+	if err != nil {
+		return unavailable("list event days", err)
 	}
-	if _, err := second.Exec(ctx, "SET TRANSACTION SNAPSHOT "+quoteLiteral(snapshot)); err != nil {
-		return unavailable("share snapshot", err)
+	sql, args := sqlEventPredictions, []any{id, from, to, until, q.Scores}
+	if q.Step > 0 && !q.Scores {
+		sql, args = sqlEventPredictionGroups, []any{id, from, to, until, q.Step.Microseconds()}
 	}
-	args := []any{id, micro(q.From), micro(q.To), micro(q.Until), q.Scores}
-	preds := streamEvents(ctx, first, sqlEventPredictions, args, scanPrediction)
-	labels := streamEvents(ctx, second, sqlEventLabels, args, scanLabel)
-	err = mergeEvents(preds, labels, fn)
+	streams := []*eventStream{streamPredictions(ctx, txs[0], sql, args)}
+	for i, tx := range txs[1:] {
+		ld := &labelDays{tx: tx, args: func(lo, hi time.Time) []any { return []any{id, lo, hi, until, q.Scores} }, from: from, to: to}
+		for j := i; j < len(days); j += labelStreams {
+			ld.days = append(ld.days, days[j])
+		}
+		streams = append(streams, streamLabels(ctx, ld))
+	}
+	err = mergeEvents(streams, fn)
 	// The streams' goroutines use the transactions: they end before the
 	// deferred rollbacks run.
 	cancel()
-	preds.stop()
-	labels.stop()
+	for _, es := range streams {
+		es.stop()
+	}
 	return err
+}
+
+// labelStreams is how many connections read label events side by side,
+// each the days of its turn (day i goes to stream i mod labelStreams).
+const labelStreams = 2
+
+// sharedSnapshot begins n read-only transactions that see one snapshot.
+func (s *Store) sharedSnapshot(ctx context.Context, n int) ([]pgx.Tx, error) {
+	opts := pgx.TxOptions{IsoLevel: pgx.RepeatableRead, AccessMode: pgx.ReadOnly}
+	txs := make([]pgx.Tx, 0, n)
+	fail := func(what string, err error) ([]pgx.Tx, error) {
+		for _, tx := range txs {
+			tx.Rollback(context.WithoutCancel(ctx))
+		}
+		return nil, unavailable(what, err)
+	}
+	var snapshot string
+	for i := range n {
+		tx, err := s.pool.BeginTx(ctx, opts)
+		if err != nil {
+			return fail("begin events read", err)
+		}
+		txs = append(txs, tx)
+		if i == 0 {
+			err = tx.QueryRow(ctx, sqlExportSnapshot).Scan(&snapshot)
+		} else {
+			_, err = tx.Exec(ctx, "SET TRANSACTION SNAPSHOT "+quoteLiteral(snapshot))
+		}
+		if err != nil {
+			return fail("share snapshot", err)
+		}
+	}
+	return txs, nil
 }
 
 // quoteLiteral quotes a snapshot id (hex digits and dashes) as an SQL
@@ -119,123 +199,38 @@ func quoteLiteral(s string) string {
 	return string(append(out, '\''))
 }
 
-// eventStream yields chunks of events read on its own goroutine.
-type eventStream struct {
-	ch   chan []store.Event
-	errc chan error
-	buf  []store.Event
-	done bool
-}
-
-func streamEvents(ctx context.Context, tx pgx.Tx, sql string, args []any, scan func(pgx.Rows, *store.Event, *[]byte) error) *eventStream {
-	es := &eventStream{ch: make(chan []store.Event, 2), errc: make(chan error, 1)}
-	go func() {
-		defer close(es.ch)
-		es.errc <- func() error {
-			for _, set := range []string{sqlEventWorkMem, sqlEventNoNestLoop} {
-				if _, err := tx.Exec(ctx, set); err != nil {
-					return unavailable("set read options", err)
-				}
-			}
-			rows, err := tx.Query(ctx, sql, args...)
-			if err != nil {
-				return unavailable("read events", err)
-			}
-			defer rows.Close()
-			chunk := make([]store.Event, 0, eventChunk)
-			var scores []byte
-			for rows.Next() {
-				chunk = append(chunk, store.Event{})
-				e := &chunk[len(chunk)-1]
-				if err := scan(rows, e, &scores); err != nil {
-					return err
-				}
-				if len(chunk) == eventChunk {
-					select {
-					case es.ch <- chunk:
-					case <-ctx.Done():
-						return ctx.Err()
-					}
-					chunk = make([]store.Event, 0, eventChunk)
-				}
-			}
-			if err := rows.Err(); err != nil {
-				return unavailable("read events", err)
-			}
-			if len(chunk) > 0 {
-				select {
-				case es.ch <- chunk:
-				case <-ctx.Done():
-					return ctx.Err()
-				}
-			}
-			return nil
-		}()
-	}()
-	return es
-}
-
-// peek returns the stream's next event, nil at its end.
-func (es *eventStream) peek() (*store.Event, error) {
-	for len(es.buf) == 0 {
-		if es.done {
-			return nil, nil
-		}
-		chunk, ok := <-es.ch
-		if !ok {
-			es.done = true
-			return nil, <-es.errc
-		}
-		es.buf = chunk
-	}
-	return &es.buf[0], nil
-}
-
-// stop waits for the stream's goroutine to end, dropping what it held.
-func (es *eventStream) stop() {
-	for range es.ch {
-	}
-	if !es.done {
-		es.done = true
-		<-es.errc
-	}
-}
-
-// mergeEvents calls fn for the events of both streams in time order, a
-// prediction first on equal times.
-func mergeEvents(preds, labels *eventStream, fn func(*store.Event) error) error {
+// mergeEvents calls fn for the events of streams in time order; on equal
+// times the earlier stream's event comes first (predictions are stream 0).
+func mergeEvents(streams []*eventStream, fn func(*store.Event) error) error {
 	for {
-		p, err := preds.peek()
-		if err != nil {
-			return err
+		var (
+			next *eventStream
+			e    *store.Event
+		)
+		for _, es := range streams {
+			h, err := es.peek()
+			if err != nil {
+				return err
+			}
+			if h != nil && (e == nil || h.At.Before(e.At)) {
+				next, e = es, h
+			}
 		}
-		l, err := labels.peek()
-		if err != nil {
-			return err
-		}
-		var e *store.Event
-		switch {
-		case p == nil && l == nil:
+		if e == nil {
 			return nil
-		case l == nil || (p != nil && !l.At.Before(p.At)):
-			e = p
-			preds.buf = preds.buf[1:]
-		default:
-			e = l
-			labels.buf = labels.buf[1:]
 		}
 		if err := fn(e); err != nil {
 			return err
 		}
+		next.buf = next.buf[1:]
 	}
 }
 
 func scanPrediction(rows pgx.Rows, e *store.Event, scores *[]byte) error {
-	if err := rows.Scan(&e.At, &e.Bucket, &e.Segment, &e.Predicted, scores); err != nil {
+	if err := rows.Scan(&e.At, &e.PredictionAt, &e.Bucket, &e.Segment, &e.Predicted, scores, &e.Count); err != nil {
 		return unavailable("read event", err)
 	}
-	e.Kind, e.At, e.Bucket = store.EventPrediction, e.At.UTC(), e.Bucket.UTC()
-	e.PredictionAt = e.At
+	e.Kind, e.At, e.PredictionAt, e.Bucket = store.EventPrediction, e.At.UTC(), e.PredictionAt.UTC(), e.Bucket.UTC()
 	return decodeScores(*scores, e)
 }
 
@@ -244,7 +239,7 @@ func scanLabel(rows pgx.Rows, e *store.Event, scores *[]byte) error {
 	if err := rows.Scan(&e.At, &e.PredictionAt, &e.Bucket, &e.Segment, &e.Predicted, scores, &old, &e.Actual, &e.Implied); err != nil {
 		return unavailable("read event", err)
 	}
-	e.Kind, e.At, e.PredictionAt, e.Bucket = store.EventLabel, e.At.UTC(), e.PredictionAt.UTC(), e.Bucket.UTC()
+	e.Kind, e.At, e.PredictionAt, e.Bucket, e.Count = store.EventLabel, e.At.UTC(), e.PredictionAt.UTC(), e.Bucket.UTC(), 1
 	if old != nil {
 		e.Old = *old
 	}

@@ -41,8 +41,9 @@ WHERE MAX(s.at, p.at) < ?4 AND s.old IS NOT s.actual
 ORDER BY 2, 1`
 
 // Events streams q's events in time order from one query, row by row; see
-// store.Store. It fails with store.ErrPurged when q.From lies before the
-// model's purge cutoff.
+// store.Store. It ignores q.Step: each prediction is an event of its own.
+// It fails with store.ErrPurged when q.From lies before the model's purge
+// cutoff.
 func (s *Store) Events(ctx context.Context, q store.EventQuery, fn func(*store.Event) error) error {
 	id, err := s.modelID(ctx, s.read, q.Model)
 	if err != nil {
@@ -70,7 +71,7 @@ func (s *Store) Events(ctx context.Context, q store.EventQuery, fn func(*store.E
 		if err := rows.Scan(&kind, &t, &pat, &bucket, &ev.Segment, &ev.Predicted, &scores, &old, &actual, &ev.Implied); err != nil {
 			return unavailable("read event", err)
 		}
-		ev.Kind = store.EventKind(kind)
+		ev.Kind, ev.Count = store.EventKind(kind), 1
 		ev.At, ev.PredictionAt, ev.Bucket = fromMicros(t), fromMicros(pat), fromMicros(bucket)
 		ev.Old, ev.Actual, ev.Scores = old.String, actual.String, nil
 		if scores.Valid {

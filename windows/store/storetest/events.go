@@ -180,12 +180,29 @@ func testEventsAsOf(t *testing.T, newStore func(t *testing.T) store.Store) {
 			for _, model := range []string{fraudModel, ticketModel} {
 				for _, T := range times {
 					q := store.EventQuery{Model: model, From: all(model).From, To: farFuture(), Until: T.Add(time.Microsecond)}
-					wantCounts(t, fmt.Sprintf("%s events folded up to %s", model, T.Format(time.RFC3339)),
-						foldEvents(t, s, q), countsAsOf(t, s, all(model), T))
+					want := countsAsOf(t, s, all(model), T)
+					wantCounts(t, fmt.Sprintf("%s events folded up to %s", model, T.Format(time.RFC3339)), foldEvents(t, s, q), want)
+					q.Step = 10 * time.Minute
+					wantCounts(t, fmt.Sprintf("%s events grouped by %s folded up to %s", model, q.Step, T.Format(time.RFC3339)), foldEvents(t, s, q), want)
 				}
 			}
 		})
 	}
+}
+
+// checkGroup checks an event's Count and, for a prediction event that
+// stands for several, that it comes at the end of the step holding its
+// latest at (store.EventQuery.Step).
+func checkGroup(q store.EventQuery, e *store.Event) error {
+	switch {
+	case e.Count < 1 || (e.Kind == store.EventLabel && e.Count != 1):
+		return fmt.Errorf("event %+v: count %d", *e, e.Count)
+	case e.Kind == store.EventLabel || e.At.Equal(e.PredictionAt):
+		return nil
+	case q.Step <= 0 || e.At.UnixMicro()%q.Step.Microseconds() != 0 || !e.PredictionAt.Before(e.At) || !e.At.Add(-q.Step).Before(e.PredictionAt):
+		return fmt.Errorf("prediction event at %s (latest at %s) is not the end of its %s step", e.At, e.PredictionAt, q.Step)
+	}
+	return nil
 }
 
 // foldEvents adds up q's events into counts as CountsAsOf reports them.
@@ -202,9 +219,12 @@ func foldEvents(t *testing.T, s store.Store, q store.EventQuery) store.Counts {
 			return fmt.Errorf("event at %s after one at %s", e.At, last)
 		}
 		last = e.At
+		if err := checkGroup(q, e); err != nil {
+			return err
+		}
 		b := e.Bucket.UnixNano()
 		if e.Kind == store.EventPrediction {
-			cells[cellKey{b, "", e.Predicted}]++
+			cells[cellKey{b, "", e.Predicted}] += e.Count
 			return nil
 		}
 		if e.Old != "" {
