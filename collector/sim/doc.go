@@ -19,10 +19,11 @@
 // as a chargeback days to weeks later; a payment nobody disputes is never
 // labeled, and the daemon's default_label (legit after label_timeout) fills
 // it in. On day nine (once a whole day's labels have matured), a wave of
-// a new fraud pattern hits online payments: fraud rises to about 5.4% and
-// the model catches under half of the new pattern, with borderline scores,
-// so fraud recall falls from about 0.85 to about 0.55. The predicted mix
-// moves at once (payments predicted fraud go from about 1.6% to 3.4%),
+// a new fraud pattern hits online payments: fraud rises to about 7.4% and
+// the model catches under a third of the new pattern, with borderline
+// scores, so fraud recall falls from about 0.85 to about 0.40. The
+// predicted mix moves at once (payments predicted fraud go from about 1.6%
+// to 3.4%),
 // while the chargebacks that show the missed frauds come back a day or
 // more later: the label-free early rule (EarlyRule) can see the wave
 // before the recall rules (RecallRule) can.
