@@ -46,7 +46,11 @@ ORDER BY 1`
 	// and the window puts the remaining versions in the order they become
 	// current, (at, actual), pairing each with the one before it. Versions
 	// that keep the class make no event. A version takes effect at the
-	// later of its at and its prediction's.
+	// later of its at and its prediction's. The day's predictions are read
+	// through the bucket index: "model_id + 0" keeps the planner off the
+	// primary key, which it would pick for a model's rows (all days) when
+	// a bulk load has not been analyzed yet, and sqlEventNoSeqScan off a
+	// scan of the whole table.
 	sqlEventLabelsDay = `WITH v AS MATERIALIZED (
     SELECT pkey, seq, at, implied, actual FROM label_versions
     WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND at < $4
@@ -64,7 +68,7 @@ ORDER BY 1`
     FROM w WHERE NOT implied OR first_real IS NULL OR first_real > at
 ), p AS (
     SELECT pkey, at, bucket, segment, predicted, scores FROM predictions
-    WHERE model_id = $1 AND bucket >= $2 AND bucket < $3 AND at < $4
+    WHERE model_id + 0 = $1 AND bucket >= $2 AND bucket < $3 AND at < $4
 )
 SELECT greatest(s.at, p.at) AS t, p.at, p.bucket, p.segment, p.predicted,
        CASE WHEN $5 THEN p.scores END, s.old, s.actual, s.implied
@@ -81,6 +85,9 @@ ORDER BY t`
 	// predictions row by row, which it picks when a bulk load has not
 	// been analyzed yet and which then costs versions × predictions.
 	sqlEventNoNestLoop = `SET LOCAL enable_nestloop = off`
+	// sqlEventNoSeqScan keeps the label streams' day queries on the
+	// indexes whatever the statistics say.
+	sqlEventNoSeqScan = `SET LOCAL enable_seqscan = off`
 )
 
 // eventChunk is how many events a stream reads at a time.
@@ -114,9 +121,13 @@ func (s *Store) Events(ctx context.Context, q store.EventQuery, fn func(*store.E
 	if err != nil {
 		return err
 	}
-	for _, tx := range txs {
+	for i, tx := range txs {
 		defer tx.Rollback(context.WithoutCancel(ctx))
-		for _, set := range []string{sqlEventWorkMem, sqlEventNoNestLoop} {
+		sets := []string{sqlEventWorkMem, sqlEventNoNestLoop, sqlEventNoSeqScan}
+		if i == 0 {
+			sets = sets[:2] // predictions: one scan of the whole range
+		}
+		for _, set := range sets {
 			if _, err := tx.Exec(ctx, set); err != nil {
 				return unavailable("set read options", err)
 			}
