@@ -280,8 +280,9 @@ func (j *labelJoin) setLabels(ctx context.Context) error {
 }
 
 // ApplyLabelTimeout gives due unlabeled predictions their implied version;
-// see store.Store. It is three set-based statements over the partial index
-// of unlabeled predictions.
+// see store.Store. It finds the buckets that still hold unlabeled
+// predictions from the maintained counts, then runs set-based statements
+// over those buckets' rows alone (see sqlIncompleteBuckets).
 func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, timeout time.Duration, now time.Time) (int64, store.Changes, error) {
 	tx, err := s.beginIngest(ctx, "begin label timeout")
 	if err != nil {
@@ -294,8 +295,16 @@ func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, time
 		return 0, store.Changes{}, err
 	}
 	cutoff, shift := micros(now)-timeout.Microseconds(), timeout.Microseconds()
+	var buckets string
+	if err := tx.QueryRowContext(ctx, sqlIncompleteBuckets, id, cutoff).Scan(&buckets); err != nil {
+		return 0, store.Changes{}, unavailable("find incomplete buckets", err)
+	}
+	if buckets == "[]" {
+		return 0, store.Changes{}, nil
+	}
+	args := []any{id, cutoff, shift, label, micros(now), buckets}
 
-	rows, err := tx.QueryContext(ctx, sqlDueGroups, id, cutoff)
+	rows, err := tx.QueryContext(ctx, sqlDueGroups, args...)
 	if err != nil {
 		return 0, store.Changes{}, unavailable("find due predictions", err)
 	}
@@ -316,13 +325,13 @@ func (s *Store) ApplyLabelTimeout(ctx context.Context, model, label string, time
 	if len(acc.cells) == 0 {
 		return 0, store.Changes{}, nil
 	}
-	if err := dueScores(ctx, tx, acc, id, cutoff, label); err != nil {
+	if err := dueScores(ctx, tx, acc, id, label, args); err != nil {
 		return 0, store.Changes{}, err
 	}
-	if _, err := tx.ExecContext(ctx, sqlInsertImplied, id, cutoff, shift, label, micros(now)); err != nil {
+	if _, err := tx.ExecContext(ctx, sqlInsertImplied, args...); err != nil {
 		return 0, store.Changes{}, unavailable("insert implied labels", err)
 	}
-	n, err := affected(tx.ExecContext(ctx, sqlSetImplied, id, cutoff, shift, label))
+	n, err := affected(tx.ExecContext(ctx, sqlSetImplied, args...))
 	if err != nil {
 		return 0, store.Changes{}, unavailable("set implied labels", err)
 	}
@@ -351,9 +360,10 @@ func (s *Store) ExpireEarlyLabels(ctx context.Context, model string, ttl time.Du
 }
 
 // dueScores counts the calibration and Brier entries of the due scored
-// predictions of model id taking the implied label.
-func dueScores(ctx context.Context, tx *ingestTx, acc *accumulator, id, cutoff int64, label string) error {
-	err := each(ctx, tx, sqlDueScored, []any{id, cutoff}, func(r *sql.Rows) error {
+// predictions of model id taking the implied label; args are the
+// label-timeout statements' arguments.
+func dueScores(ctx context.Context, tx *ingestTx, acc *accumulator, id int64, label string, args []any) error {
+	err := each(ctx, tx, sqlDueScored, args, func(r *sql.Rows) error {
 		var (
 			bucket             int64
 			segment, predicted string

@@ -143,18 +143,28 @@ ON CONFLICT (model_id, bucket, segment, actual, predicted) DO UPDATE SET n = n +
 )
 
 // Maintenance. The label-timeout statements share one predicate: unlabeled
-// predictions of model ?1 with at ≤ ?2 (now − timeout).
+// predictions of model ?1 with at ≤ ?2 (now − timeout) in the buckets of
+// the JSON array ?6, which sqlIncompleteBuckets lists: the buckets starting
+// at or before ?2 whose maintained predicted count is above their labeled
+// count. So each run reads only the rows of buckets that still hold
+// unlabeled predictions, through predictions_bucket.
 const (
+	sqlIncompleteBuckets = `WITH p AS (
+    SELECT bucket, SUM(n) AS n FROM predicted_counts WHERE model_id = ?1 AND bucket <= ?2 GROUP BY bucket
+), l AS (
+    SELECT bucket, SUM(n) AS n FROM cells WHERE model_id = ?1 AND bucket <= ?2 GROUP BY bucket
+)
+SELECT json_group_array(p.bucket) FROM p LEFT JOIN l ON l.bucket = p.bucket WHERE p.n > COALESCE(l.n, 0)`
 	sqlDueGroups = `SELECT bucket, segment, predicted, COUNT(*) FROM predictions
-WHERE model_id = ?1 AND label IS NULL AND at <= ?2
+WHERE model_id = ?1 AND bucket IN (SELECT value FROM json_each(?6)) AND label IS NULL AND at <= ?2
 GROUP BY bucket, segment, predicted`
 	sqlDueScored = `SELECT bucket, segment, predicted, scores FROM predictions
-WHERE model_id = ?1 AND label IS NULL AND at <= ?2 AND scores IS NOT NULL`
+WHERE model_id = ?1 AND bucket IN (SELECT value FROM json_each(?6)) AND label IS NULL AND at <= ?2 AND scores IS NOT NULL`
 	sqlInsertImplied = `INSERT INTO label_versions (model_id, id, implied, at, actual, received_at)
 SELECT model_id, id, 1, at + ?3, ?4, ?5 FROM predictions
-WHERE model_id = ?1 AND label IS NULL AND at <= ?2`
+WHERE model_id = ?1 AND bucket IN (SELECT value FROM json_each(?6)) AND label IS NULL AND at <= ?2`
 	sqlSetImplied = `UPDATE predictions SET label = ?4, label_at = at + ?3, label_implied = 1
-WHERE model_id = ?1 AND label IS NULL AND at <= ?2`
+WHERE model_id = ?1 AND bucket IN (SELECT value FROM json_each(?6)) AND label IS NULL AND at <= ?2`
 	sqlExpireEarly = `DELETE FROM early_labels WHERE model_id = ? AND received_at <= ?`
 	sqlPurgeTotals = `SELECT COUNT(*), COUNT(label) FROM predictions WHERE model_id = ? AND bucket < ?`
 	sqlPurgeLabels = `DELETE FROM label_versions
