@@ -36,17 +36,9 @@ func replayModel(ctx context.Context, opts Options, info store.ModelInfo, plans 
 	start := startOf(opts.From, mo, plans)
 	as := newAsOf(info, mo.Bucket, start)
 	clock = opts.From.UTC()
-	managers := make([]*alerts.Manager, len(plans))
-	next := make([]time.Time, len(plans))
-	for i, p := range plans {
-		managers[i], err = alerts.New(alerts.Options{
-			Store: as, View: tr.View, Watermark: tr.Watermark, Rules: []alerts.Rule{p.rule}, Windows: opts.Windows,
-			Confidence: opts.Confidence, Now: now,
-		})
-		if err != nil {
-			return err
-		}
-		next[i] = first(p.schedule, opts.From)
+	managers, next, err := managersOf(opts, plans, as, tr, now)
+	if err != nil {
+		return err
 	}
 
 	rctx, cancel := context.WithCancel(ctx)
@@ -126,6 +118,25 @@ func readsScores(r alerts.Rule) bool {
 	}
 	d, ok := windows.LookupMetric(r.Metric)
 	return ok && d.FromScores
+}
+
+// managersOf builds one alert manager per plan over the as-of store and
+// the tracker, and returns them with each plan's first evaluation time.
+func managersOf(opts Options, plans []*plan, as *asOf, tr *windows.Tracker, now func() time.Time) ([]*alerts.Manager, []time.Time, error) {
+	managers := make([]*alerts.Manager, len(plans))
+	next := make([]time.Time, len(plans))
+	for i, p := range plans {
+		var err error
+		managers[i], err = alerts.New(alerts.Options{
+			Store: as, View: tr.View, Watermark: tr.Watermark, Rules: []alerts.Rule{p.rule}, Windows: opts.Windows,
+			Confidence: opts.Confidence, Now: now,
+		})
+		if err != nil {
+			return nil, nil, err
+		}
+		next[i] = first(p.schedule, opts.From)
+	}
+	return managers, next, nil
 }
 
 // readError explains a failed event read; a purge that took rows the
