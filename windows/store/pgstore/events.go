@@ -2,7 +2,6 @@ package pgstore
 
 import (
 	"context"
-	"encoding/json"
 	"fmt"
 	"time"
 
@@ -261,7 +260,8 @@ func decodeScores(b []byte, e *store.Event) error {
 	if len(b) == 0 {
 		return nil
 	}
-	if err := json.Unmarshal(b, &e.Scores); err != nil {
+	var err error
+	if e.Scores, err = parseScores(b); err != nil {
 		return fmt.Errorf("decode scores: %w", err)
 	}
 	return nil

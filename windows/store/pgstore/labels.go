@@ -3,7 +3,6 @@ package pgstore
 import (
 	"cmp"
 	"context"
-	"encoding/json"
 	"fmt"
 	"slices"
 	"strings"
@@ -377,8 +376,8 @@ func tallyTarget(tg *target, t *tally) error {
 
 // scoreTerms decodes stored scores and returns their terms.
 func scoreTerms(raw []byte, predicted string) (store.ScoreTerms, error) {
-	var scores map[string]float64
-	if err := json.Unmarshal(raw, &scores); err != nil {
+	scores, err := parseScores(raw)
+	if err != nil {
 		return store.ScoreTerms{}, fmt.Errorf("decode stored scores: %w", err)
 	}
 	terms, _ := store.NewScoreTerms(scores, predicted)

@@ -50,7 +50,7 @@ import (
 // (to show whether the join slows as the tables grow), batch latency
 // percentiles, and the Go heap after the unlabeled predictions. When the
 // server has pg_stat_statements loaded, it prints the statements that took
-// most server time in the label phase. Figures are printed, not asserted:
+// most server time in each phase. Figures are printed, not asserted:
 // speed depends on the machine. The run then checks the totals (every
 // label counted once) and Verify.
 func TestLoadHarness(t *testing.T) {
@@ -209,10 +209,12 @@ func runLoad(t *testing.T, d loadData, clients int) {
 		}
 	}
 	predBatches := r.predictionBatches()
+	r.resetStatements(ctx)
 	heapBefore := heapInUse()
 	raw, ingest := r.phases(predBatches, "bare_predictions", false, r.ingestPredictions)
 	heapAfter := heapInUse()
 	r.report("prediction ingest", raw, ingest, d.n)
+	r.logStatements(ctx, "prediction phase")
 	t.Logf("Go heap in use after GC: %.1f MiB before ingest, %.1f MiB after %d unlabeled predictions",
 		float64(heapBefore)/(1<<20), float64(heapAfter)/(1<<20), d.n)
 
@@ -225,7 +227,7 @@ func runLoad(t *testing.T, d loadData, clients int) {
 	raw2, join := r.phases(labelBatches, "bare_predictions_2", true, r.ingestLabels)
 	r.report("label join", raw2, join, nLabels)
 	r.logPerMillion(raw2, join)
-	r.logStatements(ctx)
+	r.logStatements(ctx, "label phase")
 	r.check(ctx, nLabels)
 }
 
@@ -447,7 +449,7 @@ func (r *loadRun) resetStatements(ctx context.Context) {
 
 // logStatements prints the statements that took most server time since
 // resetStatements, when the server has pg_stat_statements.
-func (r *loadRun) logStatements(ctx context.Context) {
+func (r *loadRun) logStatements(ctx context.Context, phase string) {
 	rows, err := r.s.pool.Query(ctx, `SELECT calls, round(total_exec_time)::bigint, round(100 * total_exec_time / sum(total_exec_time) OVER ())::int,
     shared_blks_hit + shared_blks_read, shared_blks_dirtied, left(regexp_replace(query, '\s+', ' ', 'g'), 110)
 FROM public.pg_stat_statements WHERE dbid = (SELECT oid FROM pg_database WHERE datname = current_database()) ORDER BY total_exec_time DESC LIMIT 8`)
@@ -459,7 +461,7 @@ FROM public.pg_stat_statements WHERE dbid = (SELECT oid FROM pg_database WHERE d
 		share                      int32
 		query                      string
 	)
-	r.t.Log("pg_stat_statements, label phase: calls, ms, share, blocks, dirtied, statement")
+	r.t.Logf("pg_stat_statements, %s: calls, ms, share, blocks, dirtied, statement", phase)
 	_, err = pgx.ForEachRow(rows, []any{&calls, &ms, &share, &blocks, &dirtied, &query}, func() error {
 		r.t.Logf("  %7d %7d %3d%% %9d %7d %s", calls, ms, share, blocks, dirtied, query)
 		return nil

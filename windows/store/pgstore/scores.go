@@ -2,7 +2,6 @@ package pgstore
 
 import (
 	"context"
-	"encoding/json"
 	"fmt"
 	"time"
 
@@ -89,8 +88,8 @@ func scoresAsOf(ctx context.Context, tx querier, out *store.Counts, args ...any)
 
 // addRaw adds one raw prediction's stored scores to r.
 func addRaw(r *store.ScoreRecount, group string, bucket time.Time, predicted string, raw []byte, actual *string) error {
-	var scores map[string]float64
-	if err := json.Unmarshal(raw, &scores); err != nil {
+	scores, err := parseScores(raw)
+	if err != nil {
 		return fmt.Errorf("decode stored scores: %w", err)
 	}
 	if actual == nil {
