@@ -261,7 +261,7 @@ func decodeScores(b []byte, e *store.Event) error {
 		return nil
 	}
 	var err error
-	if e.Scores, err = parseScores(b); err != nil {
+	if e.Scores, err = store.ParseScores(b); err != nil {
 		return fmt.Errorf("decode scores: %w", err)
 	}
 	return nil

@@ -376,7 +376,7 @@ func tallyTarget(tg *target, t *tally) error {
 
 // scoreTerms decodes stored scores and returns their terms.
 func scoreTerms(raw []byte, predicted string) (store.ScoreTerms, error) {
-	scores, err := parseScores(raw)
+	scores, err := store.ParseScores(raw)
 	if err != nil {
 		return store.ScoreTerms{}, fmt.Errorf("decode stored scores: %w", err)
 	}

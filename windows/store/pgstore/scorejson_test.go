@@ -10,10 +10,11 @@ import (
 
 	"github.com/jackc/pgx/v5"
 
+	"github.com/classwatch/classwatch/windows/store"
 	"github.com/classwatch/classwatch/windows/store/pgtest"
 )
 
-// TestParseScoresMatchesEncodingJSON checks parseScores against
+// TestParseScoresMatchesEncodingJSON checks store.ParseScores against
 // encoding/json (the reference decoder) on hand-picked texts, on random
 // score maps as PostgreSQL prints them after a round trip through jsonb,
 // and on texts only encoding/json may accept or refuse.
@@ -44,9 +45,9 @@ func TestParseScoresMatchesEncodingJSON(t *testing.T) {
 	for _, text := range texts {
 		var want map[string]float64
 		wantErr := json.Unmarshal([]byte(text), &want)
-		got, err := parseScores([]byte(text))
+		got, err := store.ParseScores([]byte(text))
 		if (err != nil) != (wantErr != nil) || !maps.Equal(got, want) {
-			t.Errorf("parseScores(%s) = %v, %v; encoding/json gives %v, %v", text, got, err, want, wantErr)
+			t.Errorf("store.ParseScores(%s) = %v, %v; encoding/json gives %v, %v", text, got, err, want, wantErr)
 		}
 	}
 }

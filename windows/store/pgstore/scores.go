@@ -88,7 +88,7 @@ func scoresAsOf(ctx context.Context, tx querier, out *store.Counts, args ...any)
 
 // addRaw adds one raw prediction's stored scores to r.
 func addRaw(r *store.ScoreRecount, group string, bucket time.Time, predicted string, raw []byte, actual *string) error {
-	scores, err := parseScores(raw)
+	scores, err := store.ParseScores(raw)
 	if err != nil {
 		return fmt.Errorf("decode stored scores: %w", err)
 	}

@@ -3,7 +3,6 @@ package sqlitestore
 import (
 	"context"
 	"database/sql"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"time"
@@ -75,7 +74,7 @@ func (s *Store) Events(ctx context.Context, q store.EventQuery, fn func(*store.E
 		ev.At, ev.PredictionAt, ev.Bucket = fromMicros(t), fromMicros(pat), fromMicros(bucket)
 		ev.Old, ev.Actual, ev.Scores = old.String, actual.String, nil
 		if scores.Valid {
-			if err := json.Unmarshal([]byte(scores.String), &ev.Scores); err != nil {
+			if ev.Scores, err = store.ParseScores([]byte(scores.String)); err != nil {
 				return fmt.Errorf("decode scores: %w", err)
 			}
 		}

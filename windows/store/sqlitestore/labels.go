@@ -3,7 +3,6 @@ package sqlitestore
 import (
 	"context"
 	"database/sql"
-	"encoding/json"
 	"errors"
 	"fmt"
 	"time"
@@ -246,8 +245,8 @@ func (j *labelJoin) moveScores(tg *labelTarget, model int64, old sql.NullString,
 	if !tg.scores.Valid {
 		return
 	}
-	var scores map[string]float64
-	if err := json.Unmarshal([]byte(tg.scores.String), &scores); err != nil {
+	scores, err := store.ParseScores([]byte(tg.scores.String))
+	if err != nil {
 		j.err = fmt.Errorf("decode stored scores: %w", err)
 		return
 	}
@@ -372,8 +371,8 @@ func dueScores(ctx context.Context, tx *ingestTx, acc *accumulator, id int64, la
 		if err := r.Scan(&bucket, &segment, &predicted, &raw); err != nil {
 			return err
 		}
-		var scores map[string]float64
-		if err := json.Unmarshal([]byte(raw), &scores); err != nil {
+		scores, err := store.ParseScores([]byte(raw))
+		if err != nil {
 			return fmt.Errorf("decode stored scores: %w", err)
 		}
 		terms, _ := store.NewScoreTerms(scores, predicted)

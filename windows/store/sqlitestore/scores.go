@@ -3,7 +3,6 @@ package sqlitestore
 import (
 	"context"
 	"database/sql"
-	"encoding/json"
 	"fmt"
 	"time"
 
@@ -88,8 +87,8 @@ func scoresAsOf(ctx context.Context, q queryer, out *store.Counts, args []any) e
 
 // addRaw adds one raw prediction's stored scores to r.
 func addRaw(r *store.ScoreRecount, group string, bucket int64, predicted, raw string, actual sql.NullString) error {
-	var scores map[string]float64
-	if err := json.Unmarshal([]byte(raw), &scores); err != nil {
+	scores, err := store.ParseScores([]byte(raw))
+	if err != nil {
 		return fmt.Errorf("decode stored scores: %w", err)
 	}
 	r.Add(group, fromMicros(bucket), predicted, scores, actual.String, actual.Valid)

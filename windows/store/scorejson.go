@@ -1,19 +1,19 @@
-package pgstore
+package store
 
 import (
 	"encoding/json"
 	"strconv"
 )
 
-// parseScores decodes stored scores: a flat JSON object of numbers, as
-// PostgreSQL prints a jsonb value ({"fraud": 0.8, "legit": 0.2}). A label
-// batch decodes one per label, and encoding/json's reflection cost more
-// client CPU than the rest of the label's work; this reads the common
-// shape directly. Anything else (an escaped key, a value that is not a
+// ParseScores decodes stored scores: a flat JSON object of numbers, as
+// the stores write it and PostgreSQL prints a jsonb value
+// ({"fraud": 0.8, "legit": 0.2}). A label batch decodes one per label, and
+// encoding/json's reflection cost more client CPU than the rest of the
+// label's work; this reads the common shape directly. Anything else (an escaped key, a value that is not a
 // plain number) goes to encoding/json. Both parse numbers with
 // strconv.ParseFloat, so the floats, and the sums built from them, are the
 // same either way.
-func parseScores(raw []byte) (map[string]float64, error) {
+func ParseScores(raw []byte) (map[string]float64, error) {
 	out := make(map[string]float64, 16)
 	i := skipSpace(raw, 0)
 	if i >= len(raw) || raw[i] != '{' {
