@@ -87,3 +87,59 @@ func TestMetricDefsCountsMatchValues(t *testing.T) {
 		}
 	}
 }
+
+// TestMetricDefsFromScores checks the FromScores marks, by which the rule
+// backtest decides whether to read scores: on random periods, a metric
+// marked FromScores is undefined without score aggregates, and every other
+// metric takes the same value with and without them.
+func TestMetricDefsFromScores(t *testing.T) {
+	rng := rand.New(rand.NewPCG(17, 5))
+	for range 100 {
+		k := 2 + rng.IntN(4)
+		m := NewMatrix(classNames(k))
+		pred := make([]int64, k)
+		for a := range k {
+			for p := range k {
+				n := int64(1 + rng.IntN(20))
+				m.Add(a, p, n)
+				pred[p] += n + int64(rng.IntN(5))
+			}
+		}
+		scores, refScores := randomScoreSums(rng, k), randomScoreSums(rng, k)
+		without := Compute(m, pred, 0.95)
+		AddEarlyWarning(&without, pred, nil, &Reference{Matrix: m}, 0.95)
+		with := Compute(m, pred, 0.95)
+		AddEarlyWarning(&with, pred, scores, &Reference{Matrix: m, Scores: refScores}, 0.95)
+		for _, d := range MetricDefs() {
+			for c := range k {
+				a, b := d.Value(&without, c), d.Value(&with, c)
+				switch {
+				case d.FromScores && a != nil:
+					t.Fatalf("%s is marked FromScores but is %v without score aggregates", d.Name, *a)
+				case !d.FromScores && (a == nil) != (b == nil):
+					t.Fatalf("%s is not marked FromScores but is %v without score aggregates and %v with them", d.Name, a, b)
+				case !d.FromScores && a != nil && *a != *b:
+					t.Fatalf("%s is not marked FromScores but is %v without score aggregates and %v with them", d.Name, *a, *b)
+				}
+			}
+		}
+	}
+}
+
+// randomScoreSums returns score aggregates of k classes with some of
+// everything.
+func randomScoreSums(rng *rand.Rand, k int) *ScoreSums {
+	s := NewScoreSums(k)
+	for c := range k {
+		for b := range s.Hist[c] {
+			s.Hist[c][b] = int64(1 + rng.IntN(9))
+		}
+	}
+	for b := range s.Calib {
+		n := int64(1 + rng.IntN(9))
+		s.Calib[b] = CalibrationBin{N: n, ScoreSum: float64(n) * rng.Float64(), Correct: int64(rng.IntN(int(n) + 1))}
+		s.BrierN += n
+	}
+	s.BrierSum = float64(s.BrierN) * rng.Float64()
+	return s
+}
