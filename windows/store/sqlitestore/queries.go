@@ -145,14 +145,19 @@ ON CONFLICT (model_id, bucket, segment, actual, predicted) DO UPDATE SET n = n +
 // Maintenance. The label-timeout statements share one predicate: unlabeled
 // predictions of model ?1 with at ≤ ?2 (now − timeout) in the buckets of
 // the JSON array ?6, which sqlIncompleteBuckets lists: the buckets starting
-// at or before ?2 whose maintained predicted count is above their labeled
-// count. So each run reads only the rows of buckets that still hold
-// unlabeled predictions, through predictions_bucket.
+// at or before ?2, and not before the model's purge cutoff (whose raw rows
+// are gone while their counts stay), whose maintained predicted count is
+// above their labeled count. So each run reads only the rows of buckets
+// that still hold unlabeled predictions, through predictions_bucket.
 const (
-	sqlIncompleteBuckets = `WITH p AS (
-    SELECT bucket, SUM(n) AS n FROM predicted_counts WHERE model_id = ?1 AND bucket <= ?2 GROUP BY bucket
+	sqlIncompleteBuckets = `WITH kept AS (
+    SELECT purged_before AS since FROM models WHERE id = ?1
+), p AS (
+    SELECT bucket, SUM(n) AS n FROM predicted_counts, kept
+    WHERE model_id = ?1 AND bucket <= ?2 AND (kept.since IS NULL OR bucket >= kept.since) GROUP BY bucket
 ), l AS (
-    SELECT bucket, SUM(n) AS n FROM cells WHERE model_id = ?1 AND bucket <= ?2 GROUP BY bucket
+    SELECT bucket, SUM(n) AS n FROM cells, kept
+    WHERE model_id = ?1 AND bucket <= ?2 AND (kept.since IS NULL OR bucket >= kept.since) GROUP BY bucket
 )
 SELECT json_group_array(p.bucket) FROM p LEFT JOIN l ON l.bucket = p.bucket WHERE p.n > COALESCE(l.n, 0)`
 	sqlDueGroups = `SELECT bucket, segment, predicted, COUNT(*) FROM predictions
