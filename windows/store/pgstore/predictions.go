@@ -355,7 +355,8 @@ func newLines(ctx context.Context, tx conn, lines []*predLine) ([]*predLine, err
 		old := c
 		old.scores = nil
 		if scores != nil {
-			if err := json.Unmarshal(scores, &old.scores); err != nil {
+			var err error
+			if old.scores, err = store.ParseScores(scores); err != nil {
 				return fmt.Errorf("decode stored scores: %w", err)
 			}
 		}
